@@ -1,0 +1,29 @@
+//! The numerical core: generalized linear models for counts with exposure, fitted exactly.
+//!
+//! This module knows nothing about SQL, Arrow or terminals (it imports neither DataFusion nor
+//! Arrow): it takes columnar `f64` slices and returns plain Rust values, so that the SQL
+//! functions, the shell, the benchmarks and any other executor call the same code.
+//!
+//! * [`design`]: predictors -> model matrix with stable column names;
+//! * [`family`]: distributions and links (Poisson/log, Gaussian/identity);
+//! * [`fit()`]: IRLS with step-halving, aliasing and boundary detection, fit statistics;
+//! * [`inference`]: coefficient tables (model, quasi, HC0, HC1) and model tests;
+//! * [`collapse`]: Poisson fits on merged covariate patterns with row-level statistics;
+//! * [`closed_form`]: exact single-rate intervals and two-rate comparisons.
+
+pub mod closed_form;
+pub mod collapse;
+pub mod design;
+mod error;
+pub mod family;
+mod fit;
+pub mod inference;
+mod solve;
+
+pub use design::{
+    ColumnKind, Design, DesignSpec, FactorColumn, MAX_DESIGN_COLUMNS, OwnedFactor, Predictor, PredictorValues,
+};
+pub use error::FitError;
+pub use family::{Family, Gaussian, Poisson};
+pub use fit::{FitInput, FitIssue, FitOptions, FitStats, GlmFit, ScoreTest, TermState, fit, log_exposure};
+pub use inference::{ModelTest, SeType, TermRow, model_test, term_table};

@@ -1,0 +1,6 @@
+//! ratesheet: per-group Poisson rate models as SQL aggregate functions over Parquet and CSV.
+//!
+//! Data flows one way: files -> DataFusion scan -> our aggregates -> [`glm`] (the numerical
+//! core) -> Arrow result columns -> rendering. See DEVELOPERS.md for the code map.
+
+pub mod glm;

@@ -1,0 +1,7 @@
+//! The whole test suite in one binary (each extra test binary would link DataFusion again).
+
+mod core_behaviour;
+mod core_closed_form;
+mod core_reference;
+mod core_simulation;
+mod support;
