@@ -4,3 +4,6 @@
 //! core) -> Arrow result columns -> rendering. See DEVELOPERS.md for the code map.
 
 pub mod glm;
+pub mod sql;
+
+pub use sql::{register_functions, register_functions_on_state};

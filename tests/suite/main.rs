@@ -4,4 +4,5 @@ mod core_behaviour;
 mod core_closed_form;
 mod core_reference;
 mod core_simulation;
+mod sql_smoke;
 mod support;

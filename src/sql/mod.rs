@@ -1,0 +1,55 @@
+//! The SQL surface: ratesheet's aggregate and scalar functions for DataFusion.
+//!
+//! Each SQL function lives in its own file with its signature, evaluation and documentation.
+//! [`register_functions`] registers all of them, and the `ratesheet.*` session options, on a
+//! DataFusion session.
+
+mod buffer;
+pub mod fit_aggregate;
+pub mod options;
+pub mod result;
+pub mod spec;
+
+use datafusion::error::Result;
+use datafusion::execution::FunctionRegistry;
+use datafusion::execution::session_state::SessionState;
+use datafusion::logical_expr::{AggregateUDF, ScalarUDF};
+use datafusion::prelude::SessionContext;
+
+pub use options::RatesheetConfig;
+
+/// All aggregate functions ratesheet adds.
+pub fn aggregate_functions() -> Vec<AggregateUDF> {
+    vec![
+        fit_aggregate::poisson_fit(),
+        fit_aggregate::poisson_count_fit(),
+        fit_aggregate::linear_fit(),
+    ]
+}
+
+/// All scalar functions ratesheet adds.
+pub fn scalar_functions() -> Vec<ScalarUDF> {
+    vec![]
+}
+
+/// Registers every ratesheet function and the `ratesheet.*` options on a session context.
+pub fn register_functions(ctx: &SessionContext) -> Result<()> {
+    let state = ctx.state_ref();
+    let mut state = state.write();
+    register_functions_on_state(&mut state)
+}
+
+/// As [`register_functions`], for a `SessionState`.
+pub fn register_functions_on_state(state: &mut SessionState) -> Result<()> {
+    for f in aggregate_functions() {
+        state.register_udaf(f.into())?;
+    }
+    for f in scalar_functions() {
+        state.register_udf(f.into())?;
+    }
+    let options = state.config_mut().options_mut();
+    if options.extensions.get::<RatesheetConfig>().is_none() {
+        options.extensions.insert(RatesheetConfig::default());
+    }
+    Ok(())
+}

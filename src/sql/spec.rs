@@ -1,0 +1,325 @@
+//! Resolution of a fit call at planning time.
+//!
+//! During logical optimisation each fit call is rewritten once: the trailing options string is
+//! merged with the session defaults and validated, predictor names are rendered from the
+//! argument expressions (`age - 40`, not `t.age - Int64(40)`), `interaction(a, b)` markers are
+//! removed from the argument list and recorded by predictor index, and the result is appended
+//! as a single JSON string literal (the *fit spec*) that the accumulators read. A call that
+//! reaches execution without the optimizer still works: its options are parsed with built-in
+//! defaults and names come from the physical expressions.
+
+use std::sync::Arc;
+
+use datafusion::arrow::datatypes::DataType;
+use datafusion::common::ScalarValue;
+use datafusion::common::config::ConfigOptions;
+use datafusion::error::Result;
+use datafusion::logical_expr::expr::{AggregateFunction, ScalarFunction};
+use datafusion::logical_expr::simplify::SimplifyContext;
+use datafusion::logical_expr::{Expr, lit};
+use datafusion::physical_expr::PhysicalExpr;
+use serde::{Deserialize, Serialize};
+
+use super::options::{FitSettings, plan_error};
+
+/// Marker that identifies a resolved fit spec literal.
+const SPEC_TAG: &str = "ratesheet-fit-spec/1";
+
+/// Which fit function a call is, and so how many leading (response) arguments it has.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash)]
+pub enum FitKind {
+    /// `poisson_fit(count, exposure, predictors...)`
+    PoissonRate,
+    /// `poisson_count_fit(count, predictors...)`
+    PoissonCount,
+    /// `linear_fit(y, predictors...)`
+    Linear,
+}
+
+impl FitKind {
+    pub fn sql_name(self) -> &'static str {
+        match self {
+            FitKind::PoissonRate => "poisson_fit",
+            FitKind::PoissonCount => "poisson_count_fit",
+            FitKind::Linear => "linear_fit",
+        }
+    }
+
+    /// Number of arguments before the predictors.
+    pub fn leading(self) -> usize {
+        match self {
+            FitKind::PoissonRate => 2,
+            FitKind::PoissonCount | FitKind::Linear => 1,
+        }
+    }
+
+    /// Names of the leading arguments, for messages.
+    pub fn leading_names(self) -> &'static [&'static str] {
+        match self {
+            FitKind::PoissonRate => &["count", "exposure"],
+            FitKind::PoissonCount => &["count"],
+            FitKind::Linear => &["response"],
+        }
+    }
+}
+
+/// One main-effect predictor of a fit.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct PredictorSpec {
+    pub name: String,
+    /// True for text, boolean and dictionary columns (treatment-coded factors).
+    pub factor: bool,
+}
+
+/// Everything an accumulator needs to know about its call.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct FitSpec {
+    pub tag: String,
+    pub settings: FitSettings,
+    pub predictors: Vec<PredictorSpec>,
+    /// Pairs of predictor indices.
+    pub interactions: Vec<(usize, usize)>,
+}
+
+impl FitSpec {
+    /// A spec with the built-in settings and no predictors.
+    pub fn empty() -> Result<FitSpec> {
+        Ok(FitSpec {
+            tag: SPEC_TAG.to_string(),
+            settings: FitSettings::from_session(&ConfigOptions::new())?,
+            predictors: Vec::new(),
+            interactions: Vec::new(),
+        })
+    }
+
+    pub fn to_literal(&self) -> String {
+        serde_json::to_string(self).expect("spec serialises")
+    }
+
+    pub fn from_literal(text: &str) -> Option<FitSpec> {
+        if !text.starts_with('{') {
+            return None;
+        }
+        serde_json::from_str::<FitSpec>(text).ok().filter(|s| s.tag == SPEC_TAG)
+    }
+}
+
+/// Whether values of this type are a factor (true), numeric (false), or unsupported (error).
+pub fn classify(function: &str, argument: &str, data_type: &DataType) -> Result<bool> {
+    match data_type {
+        DataType::Utf8 | DataType::LargeUtf8 | DataType::Utf8View | DataType::Boolean => Ok(true),
+        DataType::Dictionary(_, value) if classify(function, argument, value)? => Ok(true),
+        t if t.is_numeric() || matches!(t, DataType::Null) => Ok(false),
+        other => Err(plan_error(format!(
+            "{function}: predictor {argument} has type {other}, which is not supported; predictors must \
+             be numeric (one term) or text/boolean (a factor); cast dates to a number of days or to text"
+        ))),
+    }
+}
+
+/// True when `t` can be a count, exposure or response.
+pub fn is_numeric_type(t: &DataType) -> bool {
+    t.is_numeric() || matches!(t, DataType::Null)
+}
+
+/// The planning-time rewrite of a fit call (see the module doc).
+pub fn resolve_call(kind: FitKind, mut call: AggregateFunction, info: &SimplifyContext) -> Result<Expr> {
+    let function = kind.sql_name();
+    let args = &call.params.args;
+    if let Some(Expr::Literal(ScalarValue::Utf8(Some(text)), _)) = args.last() {
+        if FitSpec::from_literal(text).is_some() {
+            return Ok(Expr::AggregateFunction(call));
+        }
+    }
+    let mut args = std::mem::take(&mut call.params.args);
+    let options = match args.last() {
+        Some(Expr::Literal(
+            ScalarValue::Utf8(Some(_)) | ScalarValue::LargeUtf8(Some(_)) | ScalarValue::Utf8View(Some(_)),
+            _,
+        )) if args.len() > kind.leading() => match args.pop() {
+            Some(Expr::Literal(v, _)) => v.to_string(),
+            _ => unreachable!(),
+        },
+        _ => String::new(),
+    };
+    let mut settings = FitSettings::from_session(info.config_options())?;
+    settings.apply_string(&options, function)?;
+    let mut mains: Vec<Expr> = Vec::new();
+    let mut predictors: Vec<PredictorSpec> = Vec::new();
+    let mut pending: Vec<(String, String)> = Vec::new();
+    for arg in args.drain(kind.leading()..).collect::<Vec<_>>() {
+        if let Some((a, b)) = interaction_parts(&arg) {
+            pending.push((render(a), render(b)));
+            continue;
+        }
+        let name = render(&arg);
+        let factor = classify(function, &name, &info.get_data_type(&arg)?)?;
+        if predictors.iter().any(|p| p.name == name) {
+            return Err(plan_error(format!(
+                "{function}: predictor {name} is given twice; each predictor may appear once"
+            )));
+        }
+        predictors.push(PredictorSpec { name, factor });
+        mains.push(arg);
+    }
+    let position = |name: &str| predictors.iter().position(|p| p.name == name);
+    let mut interactions = Vec::new();
+    for (a, b) in pending {
+        match (position(&a), position(&b)) {
+            (Some(i), Some(j)) if i != j => interactions.push((i, j)),
+            _ => {
+                return Err(plan_error(format!(
+                    "{function}: interaction({a}, {b}) needs {a} and {b} as two distinct predictors of the same \
+                     call (main effects come first: {function}(..., {a}, {b}, interaction({a}, {b})))"
+                )));
+            }
+        }
+    }
+    check_references(function, &settings, &predictors)?;
+    let spec = FitSpec {
+        tag: SPEC_TAG.to_string(),
+        settings,
+        predictors,
+        interactions,
+    };
+    args.extend(mains);
+    args.push(lit(spec.to_literal()));
+    call.params.args = args;
+    Ok(Expr::AggregateFunction(call))
+}
+
+/// Every `ref.<name>` option must name a factor predictor of the call.
+pub fn check_references(function: &str, settings: &FitSettings, predictors: &[PredictorSpec]) -> Result<()> {
+    for name in settings.references.keys() {
+        match predictors.iter().find(|p| &p.name == name) {
+            Some(p) if p.factor => {}
+            Some(_) => {
+                return Err(plan_error(format!(
+                    "{function}: ref.{name} names a numeric predictor; reference levels apply to text or boolean predictors"
+                )));
+            }
+            None => {
+                let names: Vec<&str> = predictors.iter().map(|p| p.name.as_str()).collect();
+                return Err(plan_error(format!(
+                    "{function}: ref.{name} does not name a predictor; predictors are: {}",
+                    names.join(", ")
+                )));
+            }
+        }
+    }
+    Ok(())
+}
+
+fn interaction_parts(e: &Expr) -> Option<(&Expr, &Expr)> {
+    match e {
+        Expr::ScalarFunction(ScalarFunction { func, args }) if func.name() == "interaction" && args.len() == 2 => {
+            Some((&args[0], &args[1]))
+        }
+        Expr::Alias(a) => interaction_parts(&a.expr),
+        _ => None,
+    }
+}
+
+/// A readable name for a predictor expression: a bare column gives its name; casts the planner
+/// inserted are dropped; literals print as values; operators keep SQL spelling.
+pub fn render(e: &Expr) -> String {
+    match e {
+        Expr::Column(c) => c.name.clone(),
+        Expr::Alias(a) => a.name.clone(),
+        Expr::Cast(c) => render(&c.expr),
+        Expr::TryCast(c) => render(&c.expr),
+        Expr::Literal(v, _) => match v {
+            ScalarValue::Utf8(Some(s)) | ScalarValue::LargeUtf8(Some(s)) | ScalarValue::Utf8View(Some(s)) => {
+                format!("'{s}'")
+            }
+            other => other.to_string(),
+        },
+        Expr::BinaryExpr(b) => {
+            let side = |x: &Expr| match x {
+                Expr::BinaryExpr(_) => format!("({})", render(x)),
+                _ => render(x),
+            };
+            format!("{} {} {}", side(&b.left), b.op, side(&b.right))
+        }
+        Expr::Negative(x) => format!("-{}", render(x)),
+        Expr::ScalarFunction(f) => {
+            let args: Vec<String> = f.args.iter().map(render).collect();
+            format!("{}({})", f.func.name(), args.join(", "))
+        }
+        other => other.human_display().to_string(),
+    }
+}
+
+/// The physical-expression counterpart of [`render`], for calls that skipped the optimizer.
+pub fn render_physical(e: &Arc<dyn PhysicalExpr>) -> String {
+    use datafusion::physical_expr::expressions::{BinaryExpr, CastExpr, Column, Literal, TryCastExpr};
+    if let Some(c) = e.downcast_ref::<Column>() {
+        c.name().to_string()
+    } else if let Some(c) = e.downcast_ref::<CastExpr>() {
+        render_physical(c.expr())
+    } else if let Some(c) = e.downcast_ref::<TryCastExpr>() {
+        render_physical(c.expr())
+    } else if let Some(l) = e.downcast_ref::<Literal>() {
+        l.value().to_string()
+    } else if let Some(b) = e.downcast_ref::<BinaryExpr>() {
+        format!(
+            "{} {} {}",
+            render_physical(b.left()),
+            b.op(),
+            render_physical(b.right())
+        )
+    } else {
+        e.to_string()
+    }
+}
+
+/// The spec of a call at execution: the resolved literal when present, otherwise built from
+/// the raw options string (built-in defaults) and physical expressions.
+pub fn spec_at_execution(
+    kind: FitKind,
+    exprs: &[Arc<dyn PhysicalExpr>],
+    types: &[DataType],
+) -> Result<(FitSpec, usize)> {
+    use datafusion::physical_expr::expressions::Literal;
+    let function = kind.sql_name();
+    let last_text: Option<String> = exprs.last().and_then(|e| {
+        e.downcast_ref::<Literal>().and_then(|l| match l.value() {
+            ScalarValue::Utf8(Some(s)) | ScalarValue::LargeUtf8(Some(s)) | ScalarValue::Utf8View(Some(s)) => {
+                Some(s.clone())
+            }
+            _ => None,
+        })
+    });
+    if let Some(spec) = last_text.as_deref().and_then(FitSpec::from_literal) {
+        return Ok((spec, exprs.len() - 1));
+    }
+    let mut settings = FitSettings::from_session(&ConfigOptions::new())?;
+    let mut end = exprs.len();
+    if let Some(text) = &last_text {
+        if exprs.len() > kind.leading() {
+            settings.apply_string(text, function)?;
+            end -= 1;
+        }
+    }
+    let mut predictors = Vec::new();
+    for (e, t) in exprs[kind.leading()..end].iter().zip(&types[kind.leading()..end]) {
+        let name = render_physical(e);
+        if matches!(t, DataType::Struct(_)) {
+            return Err(plan_error(format!(
+                "{function}: interaction({name}) needs the query optimizer, which rewrites it; run the query through a SessionContext"
+            )));
+        }
+        let factor = classify(function, &name, t)?;
+        predictors.push(PredictorSpec { name, factor });
+    }
+    check_references(function, &settings, &predictors)?;
+    Ok((
+        FitSpec {
+            tag: SPEC_TAG.to_string(),
+            settings,
+            predictors,
+            interactions: Vec::new(),
+        },
+        end,
+    ))
+}
