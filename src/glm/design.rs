@@ -300,7 +300,7 @@ fn check_predictor(n: usize, p: &Predictor<'_>) -> Result<(), FitError> {
                     found: f.codes.len(),
                 });
             }
-            if f.reference >= f.levels.len() {
+            if f.reference >= f.levels.len() && !(f.levels.is_empty() && n == 0) {
                 return Err(FitError::BadSpec(format!(
                     "factor {} has {} levels; reference index {} is out of range",
                     p.name,

@@ -90,7 +90,12 @@ impl std::fmt::Display for FitIssue {
     fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
         match self {
             FitIssue::TooFewRows { rows, params } => {
-                write!(f, "too few rows ({rows} rows for {params} parameters)")
+                write!(
+                    f,
+                    "too few rows ({rows} row{} for {params} parameter{})",
+                    plural(*rows),
+                    plural(*params)
+                )
             }
             FitIssue::NoEvents => f.write_str("no events (all counts are 0; no finite estimates)"),
             FitIssue::RankDeficient { aliased } => {

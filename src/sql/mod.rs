@@ -6,8 +6,15 @@
 
 mod buffer;
 pub mod fit_aggregate;
+pub mod fit_expected;
+pub mod fit_lr_test;
+pub mod fit_term;
+pub mod interaction;
 pub mod options;
+pub mod rate_interval;
+pub mod rate_ratio_test;
 pub mod result;
+mod scalar_util;
 pub mod spec;
 
 use datafusion::error::Result;
@@ -29,7 +36,14 @@ pub fn aggregate_functions() -> Vec<AggregateUDF> {
 
 /// All scalar functions ratesheet adds.
 pub fn scalar_functions() -> Vec<ScalarUDF> {
-    vec![]
+    vec![
+        fit_term::fit_term(),
+        fit_expected::fit_expected(),
+        fit_lr_test::fit_lr_test(),
+        rate_interval::rate_interval(),
+        rate_ratio_test::rate_ratio_test(),
+        interaction::interaction(),
+    ]
 }
 
 /// Registers every ratesheet function and the `ratesheet.*` options on a session context.

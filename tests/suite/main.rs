@@ -4,5 +4,6 @@ mod core_behaviour;
 mod core_closed_form;
 mod core_reference;
 mod core_simulation;
+mod sql_examples;
 mod sql_smoke;
 mod support;
