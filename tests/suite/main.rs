@@ -4,6 +4,7 @@ mod core_behaviour;
 mod core_closed_form;
 mod core_reference;
 mod core_simulation;
+mod sql_engine;
 mod sql_examples;
 mod sql_smoke;
 mod support;

@@ -1,0 +1,385 @@
+//! The SQL functions inside the engine: reference values through SQL, results independent of
+//! partitioning, file splits, repartitioning and spilling, both accumulator paths agreeing,
+//! and every documentation example running.
+//!
+//! Check values: insurance.json (statsmodels 0.15.0 GLM, cross-checked with R glm) for the
+//! per-District and pooled fits; the other comparisons are between routes through the engine.
+
+use std::sync::Arc;
+
+use datafusion::arrow::array::{Array, AsArray, RecordBatch, StructArray};
+use datafusion::arrow::datatypes::Float64Type;
+use datafusion::execution::memory_pool::FairSpillPool;
+use datafusion::execution::runtime_env::RuntimeEnvBuilder;
+use datafusion::logical_expr::Partitioning;
+use datafusion::prelude::{CsvReadOptions, SessionConfig, SessionContext, col};
+use serde_json::Value;
+
+use crate::support::{close, f, fixture_path, load_json};
+
+fn context(partitions: usize) -> SessionContext {
+    let ctx = SessionContext::new_with_config(SessionConfig::new().with_target_partitions(partitions));
+    ratesheet::register_functions(&ctx).unwrap();
+    ctx
+}
+
+async fn register_insurance(ctx: &SessionContext) {
+    let path = fixture_path("reference/data/insurance.csv");
+    ctx.register_csv("insurance_csv", path.to_str().unwrap(), CsvReadOptions::new())
+        .await
+        .unwrap();
+    ctx.sql(
+        "CREATE VIEW insurance AS SELECT CAST(\"District\" AS VARCHAR) AS district, \"Group\" AS car_group, \
+         \"Age\" AS age_band, \"Holders\" AS holders, \"Claims\" AS claims FROM insurance_csv",
+    )
+    .await
+    .unwrap();
+}
+
+async fn collect(ctx: &SessionContext, sql: &str) -> Vec<RecordBatch> {
+    ctx.sql(sql)
+        .await
+        .unwrap_or_else(|e| panic!("{sql}: {e}"))
+        .collect()
+        .await
+        .unwrap()
+}
+
+/// (group key, fit struct) rows of a `SELECT key, fit ... ORDER BY key` query.
+fn fits(batches: &[RecordBatch]) -> Vec<(String, StructArray, usize)> {
+    let mut out = Vec::new();
+    for b in batches {
+        let keys =
+            datafusion::arrow::compute::cast(b.column(0), &datafusion::arrow::datatypes::DataType::Utf8).unwrap();
+        let keys = keys.as_string::<i32>();
+        let fit = b.column(1).as_struct().clone();
+        for r in 0..b.num_rows() {
+            out.push((keys.value(r).to_string(), fit.clone(), r));
+        }
+    }
+    out
+}
+
+fn fit_f64(fit: &StructArray, field: &str, r: usize) -> f64 {
+    fit.column_by_name(field)
+        .unwrap()
+        .as_primitive::<Float64Type>()
+        .value(r)
+}
+
+/// (term, estimate, std_error) of row `r`.
+fn terms(fit: &StructArray, r: usize) -> Vec<(String, Option<f64>, Option<f64>)> {
+    let list = fit.column_by_name("terms").unwrap().as_list::<i32>();
+    let t = list.value(r);
+    let t = t.as_struct();
+    let names = t.column_by_name("term").unwrap().as_string::<i32>();
+    let est = t.column_by_name("estimate").unwrap().as_primitive::<Float64Type>();
+    let se = t.column_by_name("std_error").unwrap().as_primitive::<Float64Type>();
+    (0..t.len())
+        .map(|i| {
+            (
+                names.value(i).to_string(),
+                (!est.is_null(i)).then(|| est.value(i)),
+                (!se.is_null(i)).then(|| se.value(i)),
+            )
+        })
+        .collect()
+}
+
+fn sql_name(reference_term: &str) -> String {
+    reference_term
+        .replace("District=", "district=")
+        .replace("Group=", "car_group=")
+        .replace("Age=", "age_band=")
+}
+
+fn check_against(label: &str, fit: &StructArray, r: usize, block: &Value) {
+    close(
+        &format!("{label} deviance"),
+        fit_f64(fit, "deviance", r),
+        f(&block["deviance"]),
+        1e-8,
+        1e-11,
+    );
+    close(
+        &format!("{label} pearson"),
+        fit_f64(fit, "pearson_chi2", r),
+        f(&block["pearson_chi2"]),
+        1e-8,
+        1e-11,
+    );
+    close(
+        &format!("{label} loglik"),
+        fit_f64(fit, "loglik", r),
+        f(&block["llf"]),
+        1e-8,
+        0.0,
+    );
+    close(
+        &format!("{label} aic"),
+        fit_f64(fit, "aic", r),
+        f(&block["aic"]),
+        1e-8,
+        0.0,
+    );
+    close(
+        &format!("{label} deviance p"),
+        fit_f64(fit, "deviance_p", r),
+        f(&block["deviance_gof_p_value"]),
+        1e-7,
+        1e-15,
+    );
+    let got = terms(fit, r);
+    let want = block["coefficients"].as_array().unwrap();
+    assert_eq!(got.len(), want.len(), "{label}");
+    for w in want {
+        let name = sql_name(w["term"].as_str().unwrap());
+        let (_, est, se) = got
+            .iter()
+            .find(|t| t.0 == name)
+            .unwrap_or_else(|| panic!("{label}: no term {name}"));
+        close(
+            &format!("{label} {name} estimate"),
+            est.unwrap(),
+            f(&w["estimate"]),
+            1e-8,
+            1e-12,
+        );
+        close(
+            &format!("{label} {name} se"),
+            se.unwrap(),
+            f(&w["std_error"]),
+            1e-7,
+            0.0,
+        );
+    }
+}
+
+const PER_DISTRICT: &str = "SELECT district, poisson_fit(claims, holders, car_group, age_band, \
+     'ref.car_group=<1l, ref.age_band=<25') AS fit FROM insurance GROUP BY district ORDER BY district";
+
+#[tokio::test]
+async fn per_district_and_pooled_fits_match_the_reference_through_sql() {
+    let expected = load_json("reference/expected/insurance.json");
+    let ctx = context(4);
+    register_insurance(&ctx).await;
+    let rows = fits(&collect(&ctx, PER_DISTRICT).await);
+    let groups = expected["per_group"][0]["groups"].as_array().unwrap();
+    assert_eq!(rows.len(), groups.len());
+    for ((key, fit, r), group) in rows.iter().zip(groups) {
+        assert_eq!(*key, group["group"].to_string());
+        check_against(&format!("district {key}"), fit, *r, &group["poisson"]);
+    }
+    let pooled = collect(
+        &ctx,
+        "SELECT 'all', poisson_fit(claims, holders, district, car_group, age_band, \
+         'ref.car_group=<1l, ref.age_band=<25') FROM insurance",
+    )
+    .await;
+    let rows = fits(&pooled);
+    check_against("pooled", &rows[0].1, rows[0].2, &expected["models"][0]["poisson"]);
+}
+
+/// Every number of every group, as text with full precision, for comparisons between runs.
+fn fingerprint(batches: &[RecordBatch]) -> Vec<(String, Vec<f64>)> {
+    fits(batches)
+        .into_iter()
+        .map(|(k, fit, r)| {
+            let mut v = vec![
+                fit_f64(&fit, "deviance", r),
+                fit_f64(&fit, "pearson_chi2", r),
+                fit_f64(&fit, "loglik", r),
+            ];
+            for (_, est, se) in terms(&fit, r) {
+                v.push(est.unwrap_or(f64::NAN));
+                v.push(se.unwrap_or(f64::NAN));
+            }
+            (k, v)
+        })
+        .collect()
+}
+
+fn assert_same(label: &str, a: &[(String, Vec<f64>)], b: &[(String, Vec<f64>)], tol: f64) {
+    assert_eq!(a.len(), b.len(), "{label}: number of groups");
+    for ((ka, va), (kb, vb)) in a.iter().zip(b) {
+        assert_eq!(ka, kb, "{label}");
+        for (x, y) in va.iter().zip(vb) {
+            let same = (x.is_nan() && y.is_nan()) || (x - y).abs() <= tol * x.abs().max(1.0);
+            assert!(same, "{label} group {ka}: {x} vs {y}");
+        }
+    }
+}
+
+/// A synthetic rate table with many groups, written as several CSV parts.
+fn write_parts(dir: &std::path::Path, parts: usize, groups: usize, rows_per_group: usize) {
+    std::fs::create_dir_all(dir).unwrap();
+    let mut files: Vec<String> = (0..parts)
+        .map(|_| "region,material,age,breaks,km_years\n".to_string())
+        .collect();
+    let mut state: u64 = 12345;
+    let mut next = || {
+        state ^= state << 13;
+        state ^= state >> 7;
+        state ^= state << 17;
+        state
+    };
+    for g in 0..groups {
+        for i in 0..rows_per_group {
+            let material = ["iron", "pvc", "steel"][(next() % 3) as usize];
+            let age = (next() % 60) as f64;
+            let km = 1.0 + (next() % 200) as f64 / 10.0;
+            let breaks = next() % 9;
+            files[(g * rows_per_group + i) % parts].push_str(&format!("r{g},{material},{age},{breaks},{km}\n"));
+        }
+    }
+    for (k, text) in files.iter().enumerate() {
+        std::fs::write(dir.join(format!("part-{k}.csv")), text).unwrap();
+    }
+}
+
+const SYNTH: &str =
+    "SELECT region, poisson_fit(breaks, km_years, material, age) AS fit FROM pipes GROUP BY region ORDER BY region";
+
+#[tokio::test]
+async fn results_do_not_depend_on_partitions_files_or_repartitioning() {
+    let dir = std::env::temp_dir().join(format!("ratesheet-parts-{}", std::process::id()));
+    write_parts(&dir, 5, 60, 40);
+    let mut runs = Vec::new();
+    for partitions in [1, 2, 8] {
+        let ctx = context(partitions);
+        ctx.register_csv("pipes", dir.to_str().unwrap(), CsvReadOptions::new())
+            .await
+            .unwrap();
+        runs.push((
+            format!("{partitions} partitions"),
+            fingerprint(&collect(&ctx, SYNTH).await),
+        ));
+        // An explicit hash repartition on another key before the aggregate.
+        let shuffled = ctx
+            .table("pipes")
+            .await
+            .unwrap()
+            .repartition(Partitioning::Hash(vec![col("material")], 7))
+            .unwrap();
+        ctx.register_table("pipes_shuffled", shuffled.into_view()).unwrap();
+        let repartitioned = collect(&ctx, &SYNTH.replace("FROM pipes", "FROM pipes_shuffled")).await;
+        runs.push((
+            format!("{partitions} partitions, repartitioned"),
+            fingerprint(&repartitioned),
+        ));
+    }
+    // The same rows as one file.
+    let single = dir.join("single");
+    write_parts(&single, 1, 60, 40);
+    let ctx = context(2);
+    ctx.register_csv("pipes", single.to_str().unwrap(), CsvReadOptions::new())
+        .await
+        .unwrap();
+    runs.push(("one file".into(), fingerprint(&collect(&ctx, SYNTH).await)));
+    for (label, run) in &runs[1..] {
+        assert_same(label, &runs[0].1, run, 1e-12);
+    }
+    std::fs::remove_dir_all(&dir).ok();
+}
+
+/// Under a memory limit below the working set, with a spilling pool, the aggregate spills and
+/// returns identical numbers. (A limit far below it gives a "Resources exhausted" error instead;
+/// the reliability suite covers that case.)
+#[tokio::test]
+async fn a_memory_limited_group_by_spills_and_gives_the_same_numbers() {
+    let dir = std::env::temp_dir().join(format!("ratesheet-spill-{}", std::process::id()));
+    write_parts(&dir, 4, 4000, 30);
+    let free = context(2);
+    free.register_csv("pipes", dir.to_str().unwrap(), CsvReadOptions::new())
+        .await
+        .unwrap();
+    let want = fingerprint(&collect(&free, SYNTH).await);
+
+    let pool_bytes: usize = std::env::var("RATESHEET_SPILL_POOL")
+        .ok()
+        .and_then(|v| v.parse().ok())
+        .unwrap_or(10_000_000);
+    let runtime = RuntimeEnvBuilder::new()
+        .with_memory_pool(Arc::new(FairSpillPool::new(pool_bytes)))
+        .build_arc()
+        .unwrap();
+    // The merge of spilled runs needs its own reservation; DataFusion's default (10 MB) would
+    // not fit in the pool.
+    let config = SessionConfig::new()
+        .with_target_partitions(2)
+        .with_batch_size(1024)
+        .with_sort_spill_reservation_bytes(256 << 10);
+    let ctx = SessionContext::new_with_config_rt(config, runtime);
+    ratesheet::register_functions(&ctx).unwrap();
+    ctx.register_csv("pipes", dir.to_str().unwrap(), CsvReadOptions::new())
+        .await
+        .unwrap();
+    let plan = ctx.sql(SYNTH).await.unwrap().create_physical_plan().await.unwrap();
+    let batches = datafusion::physical_plan::collect(plan.clone(), ctx.task_ctx())
+        .await
+        .unwrap();
+    assert_same("spilled", &want, &fingerprint(&batches), 1e-12);
+    assert!(spill_count(plan.as_ref()) > 0, "the memory-limited run did not spill");
+    std::fs::remove_dir_all(&dir).ok();
+}
+
+fn spill_count(plan: &dyn datafusion::physical_plan::ExecutionPlan) -> usize {
+    let own = plan.metrics().and_then(|m| m.spill_count()).unwrap_or(0);
+    own + plan.children().iter().map(|c| spill_count(c.as_ref())).sum::<usize>()
+}
+
+/// With no GROUP BY DataFusion uses the plain accumulator; with one it uses the groups
+/// accumulator. Both must give the same fit.
+#[tokio::test]
+async fn plain_and_groups_accumulators_agree() {
+    let ctx = context(2);
+    register_insurance(&ctx).await;
+    let plain = collect(
+        &ctx,
+        "SELECT '1', poisson_fit(claims, holders, car_group, age_band) FROM insurance WHERE district = '1'",
+    )
+    .await;
+    let grouped = collect(
+        &ctx,
+        "SELECT district, poisson_fit(claims, holders, car_group, age_band) FROM insurance WHERE district = '1' GROUP BY district",
+    )
+    .await;
+    assert_same("plain vs groups", &fingerprint(&plain), &fingerprint(&grouped), 1e-13);
+}
+
+/// The SQL example in every function's documentation runs and returns one row.
+#[tokio::test]
+async fn every_documentation_example_runs() {
+    let ctx = context(2);
+    let mut seen = 0;
+    for udf in ratesheet::sql::scalar_functions() {
+        let doc = udf
+            .documentation()
+            .unwrap_or_else(|| panic!("{} has no documentation", udf.name()));
+        run_example(&ctx, udf.name(), doc.sql_example.as_deref()).await;
+        seen += 1;
+    }
+    for udaf in ratesheet::sql::aggregate_functions() {
+        let doc = udaf
+            .documentation()
+            .unwrap_or_else(|| panic!("{} has no documentation", udaf.name()));
+        run_example(&ctx, udaf.name(), doc.sql_example.as_deref()).await;
+        seen += 1;
+    }
+    assert_eq!(seen, 9);
+}
+
+async fn run_example(ctx: &SessionContext, name: &str, sql: Option<&str>) {
+    let sql = sql.unwrap_or_else(|| panic!("{name} has no SQL example"));
+    let batches = ctx
+        .sql(sql)
+        .await
+        .unwrap_or_else(|e| panic!("{name} example does not plan: {e}\n{sql}"))
+        .collect()
+        .await
+        .unwrap_or_else(|e| panic!("{name} example fails: {e}\n{sql}"));
+    let rows: usize = batches.iter().map(RecordBatch::num_rows).sum();
+    assert_eq!(rows, 1, "{name} example");
+    let first = batches.iter().find(|b| b.num_rows() > 0).unwrap();
+    assert!(!first.column(0).is_null(0), "{name} example returned NULL:\n{sql}");
+}
