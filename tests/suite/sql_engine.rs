@@ -298,7 +298,7 @@ async fn a_memory_limited_group_by_spills_and_gives_the_same_numbers() {
     let pool_bytes: usize = std::env::var("RATESHEET_SPILL_POOL")
         .ok()
         .and_then(|v| v.parse().ok())
-        .unwrap_or(10_000_000);
+        .unwrap_or(16_000_000);
     let runtime = RuntimeEnvBuilder::new()
         .with_memory_pool(Arc::new(FairSpillPool::new(pool_bytes)))
         .build_arc()
