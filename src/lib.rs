@@ -7,3 +7,4 @@ pub mod glm;
 pub mod sql;
 
 pub use sql::{register_functions, register_functions_on_state};
+pub mod cli;

@@ -1,0 +1,8 @@
+//! The command-line program: sessions over files, rendering of results, the interactive shell.
+//!
+//! This layer only wires things together: it opens files as DataFusion tables, runs SQL, and
+//! renders Arrow batches. Everything statistical lives in `glm` and `sql`.
+
+pub mod render;
+pub mod session;
+pub mod shell;

@@ -1,0 +1,264 @@
+//! Rendering of result batches: an aligned text table (our own layout), CSV, JSON lines and
+//! Markdown.
+//!
+//! Text layout: a header, a rule of '─' under each column, then rows; numbers right-aligned
+//! with a chosen number of significant digits, p-values as `<1e-16` below that, NULL as `∅`,
+//! a fit struct summarised in one cell (status, rows, deviance, dispersion, number of terms).
+
+use datafusion::arrow::array::{Array, ArrayRef, AsArray, RecordBatch, StructArray};
+use datafusion::arrow::datatypes::{DataType, Float64Type};
+use datafusion::arrow::util::display::{ArrayFormatter, FormatOptions};
+use datafusion::error::Result;
+
+/// Output formats.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, clap::ValueEnum)]
+pub enum Format {
+    Table,
+    Csv,
+    Json,
+    Markdown,
+}
+
+/// Rendering choices.
+#[derive(Debug, Clone, Copy)]
+pub struct Style {
+    pub format: Format,
+    pub digits: usize,
+    /// Rows shown in table and Markdown output before the rest is summarised.
+    pub max_rows: usize,
+}
+
+const NULL_MARK: &str = "∅";
+
+/// Renders batches to a string.
+pub fn render(batches: &[RecordBatch], style: &Style) -> Result<String> {
+    match style.format {
+        Format::Csv => {
+            let mut out = Vec::new();
+            {
+                let mut w = datafusion::arrow::csv::WriterBuilder::new()
+                    .with_header(true)
+                    .build(&mut out);
+                for b in batches {
+                    w.write(&flatten_structs(b)?)?;
+                }
+            }
+            Ok(String::from_utf8_lossy(&out).into_owned())
+        }
+        Format::Json => {
+            let mut out = Vec::new();
+            {
+                let mut w = datafusion::arrow::json::LineDelimitedWriter::new(&mut out);
+                for b in batches {
+                    w.write(b)?;
+                }
+                w.finish()?;
+            }
+            Ok(String::from_utf8_lossy(&out).into_owned())
+        }
+        Format::Table | Format::Markdown => text_table(batches, style),
+    }
+}
+
+/// CSV has no nested values: struct columns become their JSON text.
+fn flatten_structs(b: &RecordBatch) -> Result<RecordBatch> {
+    let mut fields = Vec::new();
+    let mut columns: Vec<ArrayRef> = Vec::new();
+    for (f, c) in b.schema().fields().iter().zip(b.columns()) {
+        if matches!(c.data_type(), DataType::Struct(_) | DataType::List(_)) {
+            let options = FormatOptions::default();
+            let fmt = ArrayFormatter::try_new(c.as_ref(), &options)?;
+            let text: datafusion::arrow::array::StringArray = (0..c.len())
+                .map(|r| (!c.is_null(r)).then(|| fmt.value(r).to_string()))
+                .collect();
+            fields.push(datafusion::arrow::datatypes::Field::new(f.name(), DataType::Utf8, true));
+            columns.push(std::sync::Arc::new(text));
+        } else {
+            fields.push(f.as_ref().clone());
+            columns.push(c.clone());
+        }
+    }
+    Ok(RecordBatch::try_new(
+        std::sync::Arc::new(datafusion::arrow::datatypes::Schema::new(fields)),
+        columns,
+    )?)
+}
+
+fn is_p_value(name: &str) -> bool {
+    let n = name.to_ascii_lowercase();
+    let n = n.trim_end_matches(']');
+    n.ends_with("p_value") || n.ends_with("_p") || n == "p"
+}
+
+/// A number with `digits` significant digits; scientific notation for very large or small.
+pub fn format_number(v: f64, digits: usize) -> String {
+    if v == 0.0 {
+        return "0".into();
+    }
+    if !v.is_finite() {
+        return v.to_string();
+    }
+    let digits = digits.clamp(1, 17);
+    let a = v.abs();
+    if (1e-4..1e12).contains(&a) {
+        let decimals = (digits as i32 - 1 - a.log10().floor() as i32).max(0) as usize;
+        let s = format!("{v:.decimals$}");
+        if s.contains('.') {
+            s.trim_end_matches('0').trim_end_matches('.').to_string()
+        } else {
+            s
+        }
+    } else {
+        let s = format!("{v:.prec$e}", prec = digits - 1);
+        match s.split_once('e') {
+            Some((m, e)) if m.contains('.') => format!("{}e{e}", m.trim_end_matches('0').trim_end_matches('.')),
+            _ => s,
+        }
+    }
+}
+
+/// A p-value: below 1e-16 as `<1e-16`, otherwise 3 significant digits.
+pub fn format_p(v: f64) -> String {
+    if v < 1e-16 {
+        "<1e-16".into()
+    } else {
+        format_number(v, 3)
+    }
+}
+
+fn is_fit(s: &StructArray) -> bool {
+    s.column_by_name("status").is_some() && s.column_by_name("terms").is_some()
+}
+
+/// One-cell summary of a fit struct.
+fn fit_summary(s: &StructArray, r: usize, digits: usize) -> String {
+    let text = |n: &str| {
+        s.column_by_name(n)
+            .and_then(|c| c.as_string_opt::<i32>())
+            .filter(|c| !c.is_null(r))
+            .map(|c| c.value(r).to_string())
+    };
+    let float = |n: &str| {
+        s.column_by_name(n)
+            .and_then(|c| c.as_primitive_opt::<Float64Type>())
+            .filter(|c| !c.is_null(r))
+            .map(|c| format_number(c.value(r), digits))
+            .unwrap_or_else(|| NULL_MARK.into())
+    };
+    let uint = |n: &str| {
+        s.column_by_name(n)
+            .and_then(|c| c.as_primitive_opt::<datafusion::arrow::datatypes::UInt64Type>())
+            .filter(|c| !c.is_null(r))
+            .map(|c| c.value(r).to_string())
+            .unwrap_or_else(|| NULL_MARK.into())
+    };
+    let terms = s
+        .column_by_name("terms")
+        .and_then(|c| c.as_list_opt::<i32>())
+        .map_or(0, |l| l.value_length(r));
+    format!(
+        "[{}] rows {} · deviance {} · dispersion {} · {} terms",
+        text("status").unwrap_or_default(),
+        uint("n_used"),
+        float("deviance"),
+        float("dispersion"),
+        terms
+    )
+}
+
+fn cell(col: &ArrayRef, fmt: &ArrayFormatter<'_>, name: &str, r: usize, digits: usize) -> (String, bool) {
+    if col.is_null(r) {
+        return (NULL_MARK.into(), false);
+    }
+    match col.data_type() {
+        DataType::Float64 => {
+            let v = col.as_primitive::<Float64Type>().value(r);
+            (
+                if is_p_value(name) {
+                    format_p(v)
+                } else {
+                    format_number(v, digits)
+                },
+                true,
+            )
+        }
+        DataType::Float32 | DataType::Decimal128(_, _) => {
+            let v: f64 = fmt.value(r).to_string().parse().unwrap_or(f64::NAN);
+            (format_number(v, digits), true)
+        }
+        t if t.is_integer() => (fmt.value(r).to_string(), true),
+        DataType::Struct(_) if is_fit(col.as_struct()) => (fit_summary(col.as_struct(), r, digits), false),
+        _ => (fmt.value(r).to_string(), false),
+    }
+}
+
+fn text_table(batches: &[RecordBatch], style: &Style) -> Result<String> {
+    let Some(first) = batches.first() else {
+        return Ok(String::new());
+    };
+    let schema = first.schema();
+    let names: Vec<String> = schema.fields().iter().map(|f| f.name().clone()).collect();
+    let options = FormatOptions::default().with_null(NULL_MARK);
+    let total: usize = batches.iter().map(RecordBatch::num_rows).sum();
+    let mut rows: Vec<Vec<(String, bool)>> = Vec::new();
+    'outer: for b in batches {
+        let fmts: Vec<ArrayFormatter<'_>> = b
+            .columns()
+            .iter()
+            .map(|c| ArrayFormatter::try_new(c.as_ref(), &options))
+            .collect::<std::result::Result<_, _>>()?;
+        for r in 0..b.num_rows() {
+            if rows.len() == style.max_rows {
+                break 'outer;
+            }
+            rows.push(
+                b.columns()
+                    .iter()
+                    .zip(&fmts)
+                    .zip(&names)
+                    .map(|((c, f), n)| cell(c, f, n, r, style.digits))
+                    .collect(),
+            );
+        }
+    }
+    let width = |s: &str| s.chars().count();
+    let widths: Vec<usize> = (0..names.len())
+        .map(|j| {
+            rows.iter()
+                .map(|r| width(&r[j].0))
+                .chain([width(&names[j])])
+                .max()
+                .unwrap_or(1)
+        })
+        .collect();
+    let mut out = String::new();
+    let markdown = style.format == Format::Markdown;
+    let line = |cells: Vec<String>| -> String {
+        if markdown {
+            format!("| {} |\n", cells.join(" | "))
+        } else {
+            format!("{}\n", cells.join("  ").trim_end())
+        }
+    };
+    out.push_str(&line(
+        names.iter().zip(&widths).map(|(n, w)| format!("{n:<w$}")).collect(),
+    ));
+    out.push_str(&line(
+        widths
+            .iter()
+            .map(|w| if markdown { "-".repeat(*w) } else { "─".repeat(*w) })
+            .collect(),
+    ));
+    for r in &rows {
+        out.push_str(&line(
+            r.iter()
+                .zip(&widths)
+                .map(|((s, num), w)| if *num { format!("{s:>w$}") } else { format!("{s:<w$}") })
+                .collect(),
+        ));
+    }
+    if total > rows.len() {
+        out.push_str(&format!("… {} more rows not shown\n", total - rows.len()));
+    }
+    Ok(out)
+}

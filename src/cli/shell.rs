@@ -1,0 +1,297 @@
+//! The interactive shell: SQL statements end with ';' and may span lines; shell commands start
+//! with '~' and are defined once, in [`COMMANDS`], which drives parsing and help.
+
+use std::time::Instant;
+
+use datafusion::error::Result;
+use datafusion::prelude::SessionContext;
+use rustyline::DefaultEditor;
+use rustyline::error::ReadlineError;
+
+use super::render::{Format, Style, render};
+use super::session::open_table;
+
+/// One shell command: its name, argument synopsis and help line.
+pub struct Command {
+    pub name: &'static str,
+    pub args: &'static str,
+    pub help: &'static str,
+}
+
+/// Every shell command (the single definition used for parsing and help).
+pub const COMMANDS: &[Command] = &[
+    Command {
+        name: "tables",
+        args: "",
+        help: "list open tables with their row counts",
+    },
+    Command {
+        name: "columns",
+        args: "TABLE",
+        help: "show a table's columns and types",
+    },
+    Command {
+        name: "open",
+        args: "PATH [NAME]",
+        help: "open a Parquet/CSV file or folder as a table",
+    },
+    Command {
+        name: "help",
+        args: "[FUNCTION]",
+        help: "list ratesheet's SQL functions, or show one function's documentation",
+    },
+    Command {
+        name: "format",
+        args: "table|csv|json|markdown",
+        help: "choose how results are printed",
+    },
+    Command {
+        name: "digits",
+        args: "N",
+        help: "significant digits for numbers",
+    },
+    Command {
+        name: "timing",
+        args: "on|off",
+        help: "show the time each statement took",
+    },
+    Command {
+        name: "quit",
+        args: "",
+        help: "leave the shell (Ctrl-D works too)",
+    },
+];
+
+/// The shell's prefix for commands.
+pub const PREFIX: char = '~';
+
+/// Cautions shown by the help command and at start.
+pub const CAUTION: &str = "Models are aids to judgement: check the Poisson assumptions (dispersion, overdispersion test) \
+before trusting intervals; rate ratios are associations, not causes; where health or safety decisions follow, defer to \
+local codes and qualified professional practice.";
+
+pub struct Shell {
+    ctx: SessionContext,
+    style: Style,
+    timing: bool,
+}
+
+impl Shell {
+    pub fn new(ctx: SessionContext, style: Style) -> Self {
+        Shell {
+            ctx,
+            style,
+            timing: true,
+        }
+    }
+
+    /// Runs the read-execute loop until the user quits.
+    pub async fn run(&mut self) -> Result<()> {
+        let mut editor = DefaultEditor::new().map_err(|e| datafusion::error::DataFusionError::External(Box::new(e)))?;
+        let history = history_path();
+        if let Some(h) = &history {
+            let _ = editor.load_history(h);
+        }
+        println!("ratesheet shell — SQL ends with ';', commands start with '{PREFIX}' ({PREFIX}help lists them).");
+        let mut buffer = String::new();
+        loop {
+            let prompt = if buffer.is_empty() { "rates> " } else { "  ...> " };
+            match editor.readline(prompt) {
+                Ok(line) => {
+                    let trimmed = line.trim();
+                    if buffer.is_empty() && trimmed.starts_with(PREFIX) {
+                        let _ = editor.add_history_entry(trimmed);
+                        if !self.command(&trimmed[1..]).await {
+                            break;
+                        }
+                        continue;
+                    }
+                    buffer.push_str(&line);
+                    buffer.push('\n');
+                    if trimmed.ends_with(';') {
+                        let sql = std::mem::take(&mut buffer);
+                        let _ = editor.add_history_entry(sql.trim());
+                        self.execute(&sql).await;
+                    }
+                }
+                Err(ReadlineError::Interrupted) => buffer.clear(),
+                Err(ReadlineError::Eof) => break,
+                Err(e) => {
+                    eprintln!("error: {e}");
+                    break;
+                }
+            }
+        }
+        if let Some(h) = &history {
+            save_history(&mut editor, h);
+        }
+        Ok(())
+    }
+
+    /// Runs one statement; Ctrl-C cancels it. Errors are printed, never fatal.
+    pub async fn execute(&mut self, sql: &str) {
+        let start = Instant::now();
+        let ctx = self.ctx.clone();
+        let owned = sql.to_string();
+        let task = tokio::spawn(async move { ctx.sql(&owned).await?.collect().await });
+        let abort = task.abort_handle();
+        let outcome = tokio::select! {
+            r = task => r,
+            _ = tokio::signal::ctrl_c() => { abort.abort(); eprintln!("cancelled"); return; }
+        };
+        match outcome {
+            Ok(Ok(batches)) => {
+                match render(&batches, &self.style) {
+                    Ok(text) => print!("{text}"),
+                    Err(e) => eprintln!("error: {e}"),
+                }
+                let rows: usize = batches.iter().map(|b| b.num_rows()).sum();
+                if self.timing {
+                    eprintln!(
+                        "({rows} row{} in {:.3} s)",
+                        if rows == 1 { "" } else { "s" },
+                        start.elapsed().as_secs_f64()
+                    );
+                }
+            }
+            Ok(Err(e)) => eprintln!("error: {e}"),
+            Err(e) => eprintln!("error: the statement stopped: {e}"),
+        }
+    }
+
+    /// Handles a shell command; returns false to leave the shell.
+    async fn command(&mut self, text: &str) -> bool {
+        let mut words = text.split_whitespace();
+        let name = words.next().unwrap_or("");
+        let args: Vec<&str> = words.collect();
+        let Some(cmd) = COMMANDS.iter().find(|c| c.name == name) else {
+            eprintln!("unknown command {PREFIX}{name}; {PREFIX}help lists the commands");
+            return true;
+        };
+        match cmd.name {
+            "quit" => return false,
+            "tables" => {
+                let sql = "SELECT table_name FROM information_schema.tables WHERE table_schema = 'public' ORDER BY 1";
+                if let Ok(df) = self.ctx.sql(sql).await {
+                    if let Ok(batches) = df.collect().await {
+                        for b in &batches {
+                            let names = datafusion::arrow::array::AsArray::as_string::<i32>(b.column(0));
+                            for n in names.iter().flatten() {
+                                let n_rows = match self.ctx.table(n).await {
+                                    Ok(t) => t
+                                        .count()
+                                        .await
+                                        .map(|c| c.to_string())
+                                        .unwrap_or_else(|e| format!("? ({e})")),
+                                    Err(e) => format!("? ({e})"),
+                                };
+                                println!("{n:<24} {n_rows:>12} rows");
+                            }
+                        }
+                    }
+                }
+            }
+            "columns" => match args.first() {
+                Some(t) => match self.ctx.table(*t).await {
+                    Ok(df) => {
+                        for f in df.schema().fields() {
+                            println!("{:<24} {}", f.name(), f.data_type());
+                        }
+                    }
+                    Err(e) => eprintln!("error: {e}"),
+                },
+                None => eprintln!("usage: {PREFIX}columns TABLE"),
+            },
+            "open" => match args.first() {
+                Some(p) => match open_table(&self.ctx, p, args.get(1).copied()).await {
+                    Ok(name) => println!("opened {p} as {name}"),
+                    Err(e) => eprintln!("error: {e}"),
+                },
+                None => eprintln!("usage: {PREFIX}open PATH [NAME]"),
+            },
+            "help" => print_help(args.first().copied()),
+            "format" => {
+                use clap::ValueEnum;
+                match args.first().and_then(|f| Format::from_str(f, true).ok()) {
+                    Some(f) => self.style.format = f,
+                    None => eprintln!("usage: {PREFIX}format table|csv|json|markdown"),
+                }
+            }
+            "digits" => match args
+                .first()
+                .and_then(|d| d.parse::<usize>().ok())
+                .filter(|d| (1..=17).contains(d))
+            {
+                Some(d) => self.style.digits = d,
+                None => eprintln!("usage: {PREFIX}digits N (1 to 17)"),
+            },
+            "timing" => match args.first().copied() {
+                Some("on") => self.timing = true,
+                Some("off") => self.timing = false,
+                _ => eprintln!("usage: {PREFIX}timing on|off"),
+            },
+            _ => unreachable!("every command in COMMANDS is handled"),
+        }
+        true
+    }
+}
+
+/// Prints the command list and the SQL functions, or one function's documentation.
+pub fn print_help(function: Option<&str>) {
+    let udafs = crate::sql::aggregate_functions();
+    let udfs = crate::sql::scalar_functions();
+    let docs: Vec<(String, &datafusion::logical_expr::Documentation)> = udafs
+        .iter()
+        .map(|f| (f.name().to_string(), f.documentation()))
+        .chain(udfs.iter().map(|f| (f.name().to_string(), f.documentation())))
+        .filter_map(|(n, d)| d.map(|d| (n, d)))
+        .collect();
+    match function {
+        Some(name) => match docs.iter().find(|(n, _)| n == name) {
+            Some((_, d)) => {
+                println!("{}\n\n{}\n", d.syntax_example, d.description);
+                for (arg, text) in d.arguments.iter().flatten() {
+                    println!("  {arg:<12} {text}");
+                }
+                if let Some(ex) = &d.sql_example {
+                    println!("\nexample:\n{ex}");
+                }
+            }
+            None => eprintln!("no ratesheet function named {name}"),
+        },
+        None => {
+            println!("shell commands:");
+            for c in COMMANDS {
+                println!("  {PREFIX}{:<28} {}", format!("{} {}", c.name, c.args), c.help);
+            }
+            println!("\nSQL functions ({PREFIX}help NAME for details):");
+            for (n, d) in &docs {
+                println!("  {:<50} {}", d.syntax_example, first_sentence(&d.description));
+                let _ = n;
+            }
+            println!("\n{CAUTION}");
+        }
+    }
+}
+
+fn first_sentence(s: &str) -> &str {
+    s.split(". ").next().unwrap_or(s)
+}
+
+fn history_path() -> Option<std::path::PathBuf> {
+    let base = std::env::var_os("XDG_DATA_HOME")
+        .map(std::path::PathBuf::from)
+        .or_else(|| std::env::var_os("HOME").map(|h| std::path::PathBuf::from(h).join(".local/share")))?;
+    let dir = base.join("ratesheet");
+    std::fs::create_dir_all(&dir).ok()?;
+    Some(dir.join("history.txt"))
+}
+
+/// Writes the history to a temporary file and renames it into place, so an interrupted save
+/// never leaves a half-written history.
+fn save_history(editor: &mut DefaultEditor, path: &std::path::Path) {
+    let tmp = path.with_extension("txt.partial");
+    if editor.save_history(&tmp).is_ok() {
+        let _ = std::fs::rename(&tmp, path);
+    }
+}
