@@ -8,3 +8,4 @@ pub mod sql;
 
 pub use sql::{register_functions, register_functions_on_state};
 pub mod cli;
+pub mod demo;

@@ -110,6 +110,22 @@ async fn main() -> ExitCode {
             return ExitCode::FAILURE;
         }
     };
+    if args.paths.first().map(String::as_str) == Some("demo-data") && !std::path::Path::new("demo-data").exists() {
+        let dir = args.paths.get(1).map_or("demo-parquet", String::as_str);
+        return match ratesheet::demo::write_demo_data(std::path::Path::new(dir)) {
+            Ok(()) => {
+                eprintln!("wrote the demo data to {dir}");
+                ExitCode::SUCCESS
+            }
+            Err(e) => {
+                eprintln!("error: {e}");
+                ExitCode::FAILURE
+            }
+        };
+    }
+    if args.paths == ["demo"] && !std::path::Path::new("demo").exists() {
+        return run_demo(&ctx, args.digits).await;
+    }
     let interactive = args.execute.is_none() && args.script.is_none();
     for p in &args.paths {
         match open_table(&ctx, p, None).await {
@@ -158,5 +174,65 @@ async fn main() -> ExitCode {
             }
         }
     }
+    ExitCode::SUCCESS
+}
+
+/// Opens the demo tables and runs the narrated demo script.
+async fn run_demo(ctx: &datafusion::prelude::SessionContext, digits: usize) -> ExitCode {
+    let root = std::path::Path::new(env!("CARGO_MANIFEST_DIR"));
+    let dir = if std::path::Path::new("demo-parquet").is_dir() {
+        std::path::PathBuf::from("demo-parquet")
+    } else {
+        root.join("demo-parquet")
+    };
+    let script = root.join("sql-examples/demo.sql");
+    for file in ["pipe_breaks.parquet", "callouts.csv"] {
+        let path = dir.join(file);
+        if let Err(e) = open_table(ctx, &path.to_string_lossy(), None).await {
+            eprintln!("error: {e}");
+            return ExitCode::FAILURE;
+        }
+    }
+    let text = match std::fs::read_to_string(&script) {
+        Ok(t) => t,
+        Err(e) => {
+            eprintln!("error: {}: {e}", script.display());
+            return ExitCode::FAILURE;
+        }
+    };
+    let style = Style {
+        format: Format::Table,
+        digits,
+        max_rows: 30,
+    };
+    println!("{}\n", ratesheet::cli::shell::CAUTION);
+    for block in text.split("\n\n") {
+        let narration: Vec<&str> = block.lines().filter_map(|l| l.strip_prefix("-- ")).collect();
+        let sql: String = block
+            .lines()
+            .filter(|l| !l.starts_with("--"))
+            .collect::<Vec<_>>()
+            .join("\n");
+        if sql.trim().is_empty() {
+            continue;
+        }
+        println!("» {}", narration.join("\n  "));
+        println!("  {}\n", sql.trim().replace('\n', "\n  "));
+        match async { ctx.sql(&sql).await?.collect().await }
+            .await
+            .and_then(|b| render(&b, &style))
+        {
+            Ok(out) => println!("{out}"),
+            Err(e) => {
+                eprintln!("error: {e}");
+                return ExitCode::FAILURE;
+            }
+        }
+    }
+    println!(
+        "To explore the same data yourself: cargo run --release -- {}/pipe_breaks.parquet {}/callouts.csv",
+        dir.display(),
+        dir.display()
+    );
     ExitCode::SUCCESS
 }

@@ -235,7 +235,7 @@ pub fn render(e: &Expr) -> String {
             other => other.to_string(),
         },
         Expr::BinaryExpr(b) => {
-            let side = |x: &Expr| match x {
+            let side = |x: &Expr| match strip_casts(x) {
                 Expr::BinaryExpr(_) => format!("({})", render(x)),
                 _ => render(x),
             };
@@ -247,6 +247,15 @@ pub fn render(e: &Expr) -> String {
             format!("{}({})", f.func.name(), args.join(", "))
         }
         other => other.human_display().to_string(),
+    }
+}
+
+/// The expression under any casts the planner inserted.
+fn strip_casts(e: &Expr) -> &Expr {
+    match e {
+        Expr::Cast(c) => strip_casts(&c.expr),
+        Expr::TryCast(c) => strip_casts(&c.expr),
+        other => other,
     }
 }
 

@@ -1,9 +1,11 @@
 //! The whole test suite in one binary (each extra test binary would link DataFusion again).
 
+mod cli;
 mod core_behaviour;
 mod core_closed_form;
 mod core_reference;
 mod core_simulation;
+mod demo;
 mod sql_engine;
 mod sql_examples;
 mod sql_smoke;

@@ -1,0 +1,102 @@
+//! The command-line program, run as a user would.
+
+use std::process::Command;
+
+fn ratesheet() -> Command {
+    let mut c = Command::new(env!("CARGO_BIN_EXE_ratesheet"));
+    c.current_dir(env!("CARGO_MANIFEST_DIR"));
+    c
+}
+
+fn run(args: &[&str]) -> (i32, String, String) {
+    let out = ratesheet().args(args).output().unwrap();
+    (
+        out.status.code().unwrap_or(-1),
+        String::from_utf8_lossy(&out.stdout).into_owned(),
+        String::from_utf8_lossy(&out.stderr).into_owned(),
+    )
+}
+
+#[test]
+fn files_open_as_tables_named_after_their_stem() {
+    let (code, out, err) = run(&[
+        "demo-parquet/pipe_breaks.parquet",
+        "demo-parquet/callouts.csv",
+        "-e",
+        "SELECT COUNT(*) AS n FROM pipe_breaks; SELECT SUM(callouts) AS total FROM callouts;",
+        "--format",
+        "csv",
+    ]);
+    assert_eq!(code, 0, "{err}");
+    let csv = std::fs::read_to_string(concat!(env!("CARGO_MANIFEST_DIR"), "/demo-parquet/callouts.csv")).unwrap();
+    let total: i64 = csv
+        .lines()
+        .skip(1)
+        .map(|l| l.rsplit(',').next().unwrap().parse::<i64>().unwrap())
+        .sum();
+    assert_eq!(
+        out,
+        format!("n\n{}\ntotal\n{total}\n", ratesheet::demo::pipe_breaks().num_rows())
+    );
+}
+
+#[test]
+fn a_failing_statement_stops_the_run_with_a_nonzero_exit() {
+    let (code, out, err) = run(&[
+        "-e",
+        "SELECT 1 AS one; SELECT nope FROM nowhere; SELECT 2;",
+        "--format",
+        "csv",
+    ]);
+    assert_eq!(code, 1);
+    assert_eq!(out, "one\n1\n");
+    assert!(err.contains("error in statement 2") && err.contains("nowhere"), "{err}");
+}
+
+#[test]
+fn a_missing_file_is_named_in_the_error() {
+    let (code, _, err) = run(&["no/such/file.parquet", "-e", "SELECT 1"]);
+    assert_eq!(code, 1);
+    assert!(err.contains("no/such/file.parquet: no such file"), "{err}");
+}
+
+#[test]
+fn scripts_and_output_formats() {
+    let dir = std::env::temp_dir().join(format!("ratesheet-cli-{}", std::process::id()));
+    std::fs::create_dir_all(&dir).unwrap();
+    let script = dir.join("fits.sql");
+    std::fs::write(
+        &script,
+        "-- per-district fits\nSELECT district, poisson_fit(breaks, km_years, material)['status'] AS status\n\
+         FROM pipe_breaks WHERE district IN ('Riverside', 'Kiln Row') GROUP BY district ORDER BY district;\n",
+    )
+    .unwrap();
+    let path = script.to_str().unwrap();
+    let (code, out, err) = run(&["demo-parquet/pipe_breaks.parquet", "--script", path, "--format", "json"]);
+    assert_eq!(code, 0, "{err}");
+    assert_eq!(
+        out,
+        "{\"district\":\"Kiln Row\",\"status\":\"boundary estimate (1 term with an infinite estimate)\"}\n\
+         {\"district\":\"Riverside\",\"status\":\"ok\"}\n"
+    );
+    let (_, out, _) = run(&[
+        "demo-parquet/pipe_breaks.parquet",
+        "--script",
+        path,
+        "--format",
+        "markdown",
+    ]);
+    assert!(out.starts_with("| district  | status"), "{out}");
+    let (_, out, _) = run(&["demo-parquet/pipe_breaks.parquet", "--script", path]);
+    assert!(out.contains("─────") && out.contains("Riverside"), "{out}");
+    std::fs::remove_dir_all(&dir).ok();
+}
+
+#[test]
+fn the_demo_runs_and_shows_the_cautions() {
+    let (code, out, err) = run(&["demo"]);
+    assert_eq!(code, 0, "{err}");
+    assert!(out.contains("Models are aids to judgement"));
+    assert!(out.contains("Quarry Hill") && out.contains("boundary estimate"));
+    assert!(out.contains("To explore the same data yourself"));
+}
