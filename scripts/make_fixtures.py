@@ -176,6 +176,18 @@ def main():
         "f_p_value": float(ols.f_pvalue),
     }
 
+    # The same baseline with one predictor, as the SQL test uses it.
+    X1 = pd.DataFrame({"intercept": np.ones(len(dv)), "age": dv["age"]})
+    ols1 = sm.OLS(ly, X1).fit()
+    out["models"]["doctorvisits_log_ols_age"] = {
+        "call": "sm.OLS(np.log(visits + 1), [1, age]).fit()",
+        "terms": list(X1.columns),
+        "estimate": list(map(float, ols1.params)),
+        "se_model": list(map(float, ols1.bse)),
+        "residual_variance": float(ols1.scale),
+        "f_statistic": float(ols1.fvalue),
+    }
+
     # Exact conditional tests of two rates (p-values; the intervals are in closed_form.json).
     cases = []
     for a, ta, b, tb in [(630, 142247, 101, 39220), (32, 52407, 2, 18790), (326, 1994, 1381, 10545), (3, 100, 12, 150)]:

@@ -268,6 +268,29 @@ async fn results_do_not_depend_on_partitions_files_or_repartitioning() {
             fingerprint(&repartitioned),
         ));
     }
+    // Partial aggregation skipped at once: every input row goes through convert_to_state.
+    let skipping = SessionConfig::new()
+        .with_target_partitions(2)
+        .with_batch_size(64)
+        .set_usize("datafusion.execution.skip_partial_aggregation_probe_rows_threshold", 1)
+        .set_str(
+            "datafusion.execution.skip_partial_aggregation_probe_ratio_threshold",
+            "0.0",
+        );
+    let ctx = SessionContext::new_with_config(skipping);
+    ratesheet::register_functions(&ctx).unwrap();
+    ctx.register_csv("pipes", dir.to_str().unwrap(), CsvReadOptions::new())
+        .await
+        .unwrap();
+    let plan = ctx.sql(SYNTH).await.unwrap().create_physical_plan().await.unwrap();
+    let batches = datafusion::physical_plan::collect(plan.clone(), ctx.task_ctx())
+        .await
+        .unwrap();
+    assert!(
+        metric_sum(plan.as_ref(), "skipped_aggregation_rows") > 0,
+        "partial aggregation was not skipped"
+    );
+    runs.push(("partial aggregation skipped".into(), fingerprint(&batches)));
     // The same rows as one file.
     let single = dir.join("single");
     write_parts(&single, 1, 60, 40);
@@ -321,6 +344,18 @@ async fn a_memory_limited_group_by_spills_and_gives_the_same_numbers() {
     assert_same("spilled", &want, &fingerprint(&batches), 1e-12);
     assert!(spill_count(plan.as_ref()) > 0, "the memory-limited run did not spill");
     std::fs::remove_dir_all(&dir).ok();
+}
+
+fn metric_sum(plan: &dyn datafusion::physical_plan::ExecutionPlan, name: &str) -> usize {
+    let own = plan
+        .metrics()
+        .and_then(|m| m.sum_by_name(name))
+        .map_or(0, |v| v.as_usize());
+    own + plan
+        .children()
+        .iter()
+        .map(|c| metric_sum(c.as_ref(), name))
+        .sum::<usize>()
 }
 
 fn spill_count(plan: &dyn datafusion::physical_plan::ExecutionPlan) -> usize {
