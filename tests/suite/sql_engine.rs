@@ -94,41 +94,23 @@ fn sql_name(reference_term: &str) -> String {
 }
 
 fn check_against(label: &str, fit: &StructArray, r: usize, block: &Value) {
-    close(
-        &format!("{label} deviance"),
-        fit_f64(fit, "deviance", r),
-        f(&block["deviance"]),
-        1e-8,
-        1e-11,
-    );
-    close(
-        &format!("{label} pearson"),
-        fit_f64(fit, "pearson_chi2", r),
-        f(&block["pearson_chi2"]),
-        1e-8,
-        1e-11,
-    );
-    close(
-        &format!("{label} loglik"),
-        fit_f64(fit, "loglik", r),
-        f(&block["llf"]),
-        1e-8,
-        0.0,
-    );
-    close(
-        &format!("{label} aic"),
-        fit_f64(fit, "aic", r),
-        f(&block["aic"]),
-        1e-8,
-        0.0,
-    );
-    close(
-        &format!("{label} deviance p"),
-        fit_f64(fit, "deviance_p", r),
-        f(&block["deviance_gof_p_value"]),
-        1e-7,
-        1e-15,
-    );
+    // (our field, reference field, relative tolerance, absolute tolerance)
+    let statistics = [
+        ("deviance", "deviance", 1e-8, 1e-11),
+        ("pearson_chi2", "pearson_chi2", 1e-8, 1e-11),
+        ("loglik", "llf", 1e-8, 0.0),
+        ("aic", "aic", 1e-8, 0.0),
+        ("deviance_p", "deviance_gof_p_value", 1e-7, 1e-15),
+    ];
+    for (ours, theirs, rel, abs) in statistics {
+        close(
+            &format!("{label} {ours}"),
+            fit_f64(fit, ours, r),
+            f(&block[theirs]),
+            rel,
+            abs,
+        );
+    }
     let got = terms(fit, r);
     let want = block["coefficients"].as_array().unwrap();
     assert_eq!(got.len(), want.len(), "{label}");
