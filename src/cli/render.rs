@@ -168,7 +168,7 @@ fn fit_summary(s: &StructArray, r: usize, digits: usize) -> String {
 
 fn cell(col: &ArrayRef, fmt: &ArrayFormatter<'_>, name: &str, r: usize, digits: usize) -> (String, bool) {
     if col.is_null(r) {
-        return (NULL_MARK.into(), false);
+        return (NULL_MARK.into(), col.data_type().is_numeric());
     }
     match col.data_type() {
         DataType::Float64 => {
@@ -259,6 +259,63 @@ fn text_table(batches: &[RecordBatch], style: &Style) -> Result<String> {
     }
     if total > rows.len() {
         out.push_str(&format!("… {} more rows not shown\n", total - rows.len()));
+    }
+    if style.format == Format::Table && total <= CARD_ROWS {
+        out.push_str(&fit_cards(batches, style)?);
+    }
+    Ok(out)
+}
+
+/// Results with at most this many rows get a term table under the main table for each fit.
+const CARD_ROWS: usize = 12;
+
+/// Term fields shown in a card, in order.
+const CARD_FIELDS: &[&str] = &["term", "estimate", "std_error", "z", "p_value", "rate_ratio", "rr_low", "rr_high", "flag"];
+
+/// For each fit cell: a heading naming the row (its other columns) and the fit's term table.
+fn fit_cards(batches: &[RecordBatch], style: &Style) -> Result<String> {
+    let mut out = String::new();
+    let options = FormatOptions::default().with_null(NULL_MARK);
+    for b in batches {
+        let schema = b.schema();
+        let fit_columns: Vec<usize> = (0..b.num_columns())
+            .filter(|&j| matches!(b.column(j).data_type(), DataType::Struct(_)) && is_fit(b.column(j).as_struct()))
+            .collect();
+        if fit_columns.is_empty() {
+            continue;
+        }
+        let fmts: Vec<ArrayFormatter<'_>> =
+            b.columns().iter().map(|c| ArrayFormatter::try_new(c.as_ref(), &options)).collect::<std::result::Result<_, _>>()?;
+        for r in 0..b.num_rows() {
+            let label: Vec<String> = (0..b.num_columns())
+                .filter(|j| !fit_columns.contains(j) && !matches!(b.column(*j).data_type(), DataType::Struct(_) | DataType::List(_)))
+                .map(|j| format!("{}={}", schema.field(j).name(), fmts[j].value(r)))
+                .collect();
+            for &j in &fit_columns {
+                let fit = b.column(j).as_struct();
+                if fit.is_null(r) {
+                    continue;
+                }
+                let heading = if label.is_empty() { String::new() } else { format!("{} — ", label.join(", ")) };
+                out.push_str(&format!("\n▸ {heading}{}\n", fit_summary(fit, r, style.digits)));
+                let Some(terms) = fit.column_by_name("terms").and_then(|c| c.as_list_opt::<i32>()) else {
+                    continue;
+                };
+                let t = terms.value(r);
+                let t = t.as_struct();
+                let columns: Vec<(String, ArrayRef)> = CARD_FIELDS
+                    .iter()
+                    .filter_map(|n| t.column_by_name(n).map(|c| (n.to_string(), c.clone())))
+                    .collect();
+                let batch = RecordBatch::try_from_iter(columns)?;
+                let table = text_table(&[batch], style)?;
+                for line in table.lines() {
+                    out.push_str("    ");
+                    out.push_str(line);
+                    out.push('\n');
+                }
+            }
+        }
     }
     Ok(out)
 }
