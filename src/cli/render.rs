@@ -270,7 +270,17 @@ fn text_table(batches: &[RecordBatch], style: &Style) -> Result<String> {
 const CARD_ROWS: usize = 12;
 
 /// Term fields shown in a card, in order.
-const CARD_FIELDS: &[&str] = &["term", "estimate", "std_error", "z", "p_value", "rate_ratio", "rr_low", "rr_high", "flag"];
+const CARD_FIELDS: &[&str] = &[
+    "term",
+    "estimate",
+    "std_error",
+    "z",
+    "p_value",
+    "rate_ratio",
+    "rr_low",
+    "rr_high",
+    "flag",
+];
 
 /// For each fit cell: a heading naming the row (its other columns) and the fit's term table.
 fn fit_cards(batches: &[RecordBatch], style: &Style) -> Result<String> {
@@ -284,11 +294,17 @@ fn fit_cards(batches: &[RecordBatch], style: &Style) -> Result<String> {
         if fit_columns.is_empty() {
             continue;
         }
-        let fmts: Vec<ArrayFormatter<'_>> =
-            b.columns().iter().map(|c| ArrayFormatter::try_new(c.as_ref(), &options)).collect::<std::result::Result<_, _>>()?;
+        let fmts: Vec<ArrayFormatter<'_>> = b
+            .columns()
+            .iter()
+            .map(|c| ArrayFormatter::try_new(c.as_ref(), &options))
+            .collect::<std::result::Result<_, _>>()?;
         for r in 0..b.num_rows() {
             let label: Vec<String> = (0..b.num_columns())
-                .filter(|j| !fit_columns.contains(j) && !matches!(b.column(*j).data_type(), DataType::Struct(_) | DataType::List(_)))
+                .filter(|j| {
+                    !fit_columns.contains(j)
+                        && !matches!(b.column(*j).data_type(), DataType::Struct(_) | DataType::List(_))
+                })
                 .map(|j| format!("{}={}", schema.field(j).name(), fmts[j].value(r)))
                 .collect();
             for &j in &fit_columns {
@@ -296,7 +312,11 @@ fn fit_cards(batches: &[RecordBatch], style: &Style) -> Result<String> {
                 if fit.is_null(r) {
                     continue;
                 }
-                let heading = if label.is_empty() { String::new() } else { format!("{} — ", label.join(", ")) };
+                let heading = if label.is_empty() {
+                    String::new()
+                } else {
+                    format!("{} — ", label.join(", "))
+                };
                 out.push_str(&format!("\n▸ {heading}{}\n", fit_summary(fit, r, style.digits)));
                 let Some(terms) = fit.column_by_name("terms").and_then(|c| c.as_list_opt::<i32>()) else {
                     continue;

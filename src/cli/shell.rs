@@ -5,8 +5,13 @@ use std::time::Instant;
 
 use datafusion::error::Result;
 use datafusion::prelude::SessionContext;
-use rustyline::DefaultEditor;
+use std::sync::{Arc, Mutex};
+
+use datafusion::arrow::array::RecordBatch;
+use rustyline::completion::Completer;
 use rustyline::error::ReadlineError;
+use rustyline::history::DefaultHistory;
+use rustyline::{Context, Editor, Helper, Highlighter, Hinter, Validator};
 
 use super::render::{Format, Style, render};
 use super::session::open_table;
@@ -56,6 +61,11 @@ pub const COMMANDS: &[Command] = &[
         help: "show the time each statement took",
     },
     Command {
+        name: "save",
+        args: "FILE [replace]",
+        help: "write the last result to FILE (.csv, .json lines or .parquet); 'replace' overwrites",
+    },
+    Command {
         name: "quit",
         args: "",
         help: "leave the shell (Ctrl-D works too)",
@@ -70,10 +80,101 @@ pub const CAUTION: &str = "Models are aids to judgement: check the Poisson assum
 before trusting intervals; rate ratios are associations, not causes; where health or safety decisions follow, defer to \
 local codes and qualified professional practice.";
 
+/// Words offered by tab completion; refreshed after every statement and command.
+#[derive(Helper, Hinter, Highlighter, Validator, Default)]
+pub struct Completion {
+    words: Arc<Mutex<Vec<String>>>,
+}
+
+const KEYWORDS: &[&str] = &[
+    "SELECT",
+    "FROM",
+    "WHERE",
+    "GROUP BY",
+    "ORDER BY",
+    "HAVING",
+    "LIMIT",
+    "WITH",
+    "AS",
+    "JOIN",
+    "LEFT JOIN",
+    "CROSS JOIN",
+    "ON",
+    "AND",
+    "OR",
+    "NOT",
+    "IN",
+    "IS NULL",
+    "IS NOT NULL",
+    "DISTINCT",
+    "COUNT",
+    "SUM",
+    "AVG",
+    "CASE",
+    "WHEN",
+    "THEN",
+    "ELSE",
+    "END",
+    "CAST",
+    "UNION ALL",
+    "DESC",
+    "ASC",
+    "unnest",
+    "SET",
+    "COPY",
+];
+
+impl Completer for Completion {
+    type Candidate = String;
+    fn complete(&self, line: &str, pos: usize, _ctx: &Context<'_>) -> rustyline::Result<(usize, Vec<String>)> {
+        let start = line[..pos]
+            .rfind(|c: char| !(c.is_alphanumeric() || c == '_' || c == PREFIX))
+            .map_or(0, |i| i + 1);
+        let prefix = line[start..pos].to_ascii_lowercase();
+        if prefix.is_empty() {
+            return Ok((pos, Vec::new()));
+        }
+        let words = self.words.lock().map(|w| w.clone()).unwrap_or_default();
+        let mut found: Vec<String> = words
+            .into_iter()
+            .filter(|w| w.to_ascii_lowercase().starts_with(&prefix))
+            .collect();
+        found.sort();
+        found.dedup();
+        Ok((start, found))
+    }
+}
+
+/// Tables, columns, ratesheet functions, SQL keywords and shell commands of the session.
+async fn completion_words(ctx: &SessionContext) -> Vec<String> {
+    let mut words: Vec<String> = KEYWORDS.iter().map(|k| k.to_string()).collect();
+    words.extend(COMMANDS.iter().map(|c| format!("{PREFIX}{}", c.name)));
+    words.extend(crate::sql::aggregate_functions().iter().map(|f| f.name().to_string()));
+    words.extend(crate::sql::scalar_functions().iter().map(|f| f.name().to_string()));
+    let sql = "SELECT table_name, column_name FROM information_schema.columns WHERE table_schema = 'public'";
+    let batches = match ctx.sql(sql).await {
+        Ok(df) => df.collect().await.unwrap_or_default(),
+        Err(_) => Vec::new(),
+    };
+    for b in &batches {
+        for c in 0..2 {
+            if let Ok(col) =
+                datafusion::arrow::compute::cast(b.column(c), &datafusion::arrow::datatypes::DataType::Utf8)
+            {
+                let names = datafusion::arrow::array::AsArray::as_string::<i32>(&col);
+                words.extend(names.iter().flatten().map(str::to_string));
+            }
+        }
+    }
+    words
+}
+
 pub struct Shell {
     ctx: SessionContext,
     style: Style,
     timing: bool,
+    last: Vec<RecordBatch>,
+    completion_words: Arc<Mutex<Vec<String>>>,
 }
 
 impl Shell {
@@ -82,12 +183,26 @@ impl Shell {
             ctx,
             style,
             timing: true,
+            last: Vec::new(),
+            completion_words: Arc::default(),
+        }
+    }
+
+    async fn refresh_completion(&self) {
+        let words = completion_words(&self.ctx).await;
+        if let Ok(mut w) = self.completion_words.lock() {
+            *w = words;
         }
     }
 
     /// Runs the read-execute loop until the user quits.
     pub async fn run(&mut self) -> Result<()> {
-        let mut editor = DefaultEditor::new().map_err(|e| datafusion::error::DataFusionError::External(Box::new(e)))?;
+        let mut editor: Editor<Completion, DefaultHistory> =
+            Editor::new().map_err(|e| datafusion::error::DataFusionError::External(Box::new(e)))?;
+        editor.set_helper(Some(Completion {
+            words: self.completion_words.clone(),
+        }));
+        self.refresh_completion().await;
         let history = history_path();
         if let Some(h) = &history {
             let _ = editor.load_history(h);
@@ -104,6 +219,7 @@ impl Shell {
                         if !self.command(&trimmed[1..]).await {
                             break;
                         }
+                        self.refresh_completion().await;
                         continue;
                     }
                     buffer.push_str(&line);
@@ -112,6 +228,7 @@ impl Shell {
                         let sql = std::mem::take(&mut buffer);
                         let _ = editor.add_history_entry(sql.trim());
                         self.execute(&sql).await;
+                        self.refresh_completion().await;
                     }
                 }
                 Err(ReadlineError::Interrupted) => buffer.clear(),
@@ -153,6 +270,7 @@ impl Shell {
                         start.elapsed().as_secs_f64()
                     );
                 }
+                self.last = batches;
             }
             Ok(Err(e)) => eprintln!("error: {e}"),
             Err(e) => eprintln!("error: the statement stopped: {e}"),
@@ -230,6 +348,13 @@ impl Shell {
                 Some("off") => self.timing = false,
                 _ => eprintln!("usage: {PREFIX}timing on|off"),
             },
+            "save" => match args.first() {
+                Some(path) => match save_batches(&self.last, path, args.get(1) == Some(&"replace")) {
+                    Ok(rows) => println!("wrote {rows} rows to {path}"),
+                    Err(e) => eprintln!("error: {e}"),
+                },
+                None => eprintln!("usage: {PREFIX}save FILE [replace]"),
+            },
             _ => unreachable!("every command in COMMANDS is handled"),
         }
         true
@@ -289,9 +414,62 @@ fn history_path() -> Option<std::path::PathBuf> {
 
 /// Writes the history to a temporary file and renames it into place, so an interrupted save
 /// never leaves a half-written history.
-fn save_history(editor: &mut DefaultEditor, path: &std::path::Path) {
+fn save_history(editor: &mut Editor<Completion, DefaultHistory>, path: &std::path::Path) {
     let tmp = path.with_extension("txt.partial");
     if editor.save_history(&tmp).is_ok() {
         let _ = std::fs::rename(&tmp, path);
+    }
+}
+
+/// Writes batches to `path` (format from the extension) through a temporary file renamed into
+/// place; refuses to overwrite an existing file unless `replace`.
+pub fn save_batches(batches: &[RecordBatch], path: &str, replace: bool) -> std::result::Result<usize, String> {
+    let target = std::path::Path::new(path);
+    if target.exists() && !replace {
+        return Err(format!(
+            "{path} exists; add 'replace' to overwrite it: {PREFIX}save {path} replace"
+        ));
+    }
+    let Some(first) = batches.first() else {
+        return Err("there is no result to save yet; run a query first".into());
+    };
+    let ext = target
+        .extension()
+        .and_then(|e| e.to_str())
+        .unwrap_or("")
+        .to_ascii_lowercase();
+    let tmp = target.with_extension(format!("{ext}.partial"));
+    let write = || -> std::result::Result<(), Box<dyn std::error::Error>> {
+        let file = std::fs::File::create(&tmp)?;
+        match ext.as_str() {
+            "parquet" => {
+                let mut w = datafusion::parquet::arrow::ArrowWriter::try_new(file, first.schema(), None)?;
+                for b in batches {
+                    w.write(b)?;
+                }
+                w.close()?;
+            }
+            "csv" | "json" => {
+                use std::io::Write;
+                let style = Style {
+                    format: if ext == "csv" { Format::Csv } else { Format::Json },
+                    digits: 17,
+                    max_rows: usize::MAX,
+                };
+                let mut file = file;
+                file.write_all(render(batches, &style)?.as_bytes())?;
+                file.sync_all()?;
+            }
+            other => return Err(format!("cannot save as '.{other}': use .csv, .json or .parquet").into()),
+        }
+        std::fs::rename(&tmp, target)?;
+        Ok(())
+    };
+    match write() {
+        Ok(()) => Ok(batches.iter().map(RecordBatch::num_rows).sum()),
+        Err(e) => {
+            let _ = std::fs::remove_file(&tmp);
+            Err(format!("{path}: {e}"))
+        }
     }
 }

@@ -6,6 +6,7 @@ mod core_closed_form;
 mod core_reference;
 mod core_simulation;
 mod demo;
+mod shell;
 mod sql_engine;
 mod sql_examples;
 mod sql_smoke;

@@ -1,0 +1,118 @@
+//! The interactive shell driven through a pseudo-terminal, as a user types.
+
+use std::process::Command;
+
+use rexpect::session::{PtySession, spawn_command};
+
+fn shell(data_home: &std::path::Path) -> PtySession {
+    let mut c = Command::new(env!("CARGO_BIN_EXE_ratesheet"));
+    c.current_dir(env!("CARGO_MANIFEST_DIR"))
+        .arg("demo-parquet/pipe_breaks.parquet")
+        .env("XDG_DATA_HOME", data_home)
+        .env("TERM", "xterm");
+    let mut p = spawn_command(c, Some(20_000)).unwrap();
+    p.exp_string("rates> ").unwrap();
+    p
+}
+
+fn temp_home(tag: &str) -> std::path::PathBuf {
+    let d = std::env::temp_dir().join(format!("ratesheet-shell-{tag}-{}", std::process::id()));
+    std::fs::create_dir_all(&d).unwrap();
+    d
+}
+
+#[test]
+fn multi_line_queries_errors_help_and_history_across_sessions() {
+    let home = temp_home("history");
+    let mut p = shell(&home);
+    p.send_line("SELECT COUNT(*) AS cells").unwrap();
+    p.exp_string("...> ").unwrap();
+    p.send_line("FROM pipe_breaks;").unwrap();
+    p.exp_string("1800").unwrap();
+    p.exp_string("rates> ").unwrap();
+    p.send_line("SELECT nope FROM pipe_breaks;").unwrap();
+    p.exp_string("error:").unwrap();
+    p.exp_string("rates> ").unwrap();
+    p.send_line("~help poisson_fit").unwrap();
+    p.exp_string("poisson_fit(count, exposure, predictor").unwrap();
+    p.exp_string("rates> ").unwrap();
+    p.send_line("SELECT SUM(breaks) AS total_breaks FROM pipe_breaks;")
+        .unwrap();
+    p.exp_string("total_breaks").unwrap();
+    p.exp_string("rates> ").unwrap();
+    p.send_control('d').unwrap();
+    p.exp_eof().unwrap();
+    let history = std::fs::read_to_string(home.join("ratesheet/history.txt")).unwrap();
+    assert!(
+        history.contains("SELECT SUM(breaks) AS total_breaks FROM pipe_breaks;"),
+        "{history}"
+    );
+
+    // A second session recalls the last statement with the Up arrow.
+    let mut p = shell(&home);
+    p.send("\x1b[A").unwrap();
+    p.send_line("").unwrap();
+    p.exp_string("total_breaks").unwrap();
+    p.exp_string("rates> ").unwrap();
+    p.send_control('d').unwrap();
+    p.exp_eof().unwrap();
+    std::fs::remove_dir_all(&home).ok();
+}
+
+#[test]
+fn ctrl_c_cancels_a_running_query_and_the_shell_goes_on() {
+    let home = temp_home("cancel");
+    let mut p = shell(&home);
+    p.send_line("SELECT COUNT(*) FROM generate_series(1, 4000000000) AS a(x), generate_series(1, 10) AS b(y);")
+        .unwrap();
+    std::thread::sleep(std::time::Duration::from_millis(700));
+    p.send_control('c').unwrap();
+    p.exp_string("cancelled").unwrap();
+    p.exp_string("rates> ").unwrap();
+    p.send_line("SELECT 41 + 1 AS answer;").unwrap();
+    p.exp_string("42").unwrap();
+    p.send_line("~quit").unwrap();
+    p.exp_eof().unwrap();
+    std::fs::remove_dir_all(&home).ok();
+}
+
+#[test]
+fn tab_completes_table_names() {
+    let home = temp_home("complete");
+    let mut p = shell(&home);
+    p.send("SELECT COUNT(*) AS n FROM pipe_b").unwrap();
+    p.send("\t").unwrap();
+    p.send_line(";").unwrap();
+    p.exp_string("1800").unwrap();
+    p.send_line("~quit").unwrap();
+    p.exp_eof().unwrap();
+    std::fs::remove_dir_all(&home).ok();
+}
+
+#[test]
+fn save_writes_the_last_result_and_never_overwrites_unasked() {
+    let home = temp_home("save");
+    let target = home.join("counts.csv");
+    let target_text = target.to_str().unwrap().to_string();
+    let mut p = shell(&home);
+    p.send_line("SELECT district, COUNT(*) AS cells FROM pipe_breaks GROUP BY district ORDER BY district;")
+        .unwrap();
+    p.exp_string("rates> ").unwrap();
+    p.send_line(&format!("~save {target_text}")).unwrap();
+    p.exp_string("wrote 10 rows").unwrap();
+    p.send_line(&format!("~save {target_text}")).unwrap();
+    p.exp_string("exists; add 'replace' to overwrite it").unwrap();
+    p.send_line(&format!("~save {target_text} replace")).unwrap();
+    p.exp_string("wrote 10 rows").unwrap();
+    p.send_line("~quit").unwrap();
+    p.exp_eof().unwrap();
+    let text = std::fs::read_to_string(&target).unwrap();
+    assert!(text.starts_with("district,cells\nEast Meadows,180\n"), "{text}");
+    let leftovers: Vec<_> = std::fs::read_dir(&home)
+        .unwrap()
+        .filter_map(|e| e.ok())
+        .filter(|e| e.file_name().to_string_lossy().ends_with(".partial"))
+        .collect();
+    assert!(leftovers.is_empty(), "temporary files left behind");
+    std::fs::remove_dir_all(&home).ok();
+}
