@@ -202,11 +202,7 @@ fn text_table(batches: &[RecordBatch], style: &Style) -> Result<String> {
     let total: usize = batches.iter().map(RecordBatch::num_rows).sum();
     let mut rows: Vec<Vec<(String, bool)>> = Vec::new();
     'outer: for b in batches {
-        let fmts: Vec<ArrayFormatter<'_>> = b
-            .columns()
-            .iter()
-            .map(|c| ArrayFormatter::try_new(c.as_ref(), &options))
-            .collect::<std::result::Result<_, _>>()?;
+        let fmts = formatters(b, &options)?;
         for r in 0..b.num_rows() {
             if rows.len() == style.max_rows {
                 break 'outer;
@@ -266,6 +262,14 @@ fn text_table(batches: &[RecordBatch], style: &Style) -> Result<String> {
     Ok(out)
 }
 
+/// One display formatter per column of `b`.
+fn formatters<'a>(b: &'a RecordBatch, options: &'a FormatOptions<'a>) -> Result<Vec<ArrayFormatter<'a>>> {
+    Ok(b.columns()
+        .iter()
+        .map(|c| ArrayFormatter::try_new(c.as_ref(), options))
+        .collect::<std::result::Result<_, _>>()?)
+}
+
 /// Results with at most this many rows get a term table under the main table for each fit.
 const CARD_ROWS: usize = 12;
 
@@ -294,11 +298,7 @@ fn fit_cards(batches: &[RecordBatch], style: &Style) -> Result<String> {
         if fit_columns.is_empty() {
             continue;
         }
-        let fmts: Vec<ArrayFormatter<'_>> = b
-            .columns()
-            .iter()
-            .map(|c| ArrayFormatter::try_new(c.as_ref(), &options))
-            .collect::<std::result::Result<_, _>>()?;
+        let fmts = formatters(b, &options)?;
         for r in 0..b.num_rows() {
             let label: Vec<String> = (0..b.num_columns())
                 .filter(|j| {

@@ -261,13 +261,7 @@ async fn results_do_not_depend_on_partitions_files_or_repartitioning() {
         );
     let ctx = SessionContext::new_with_config(skipping);
     ratesheet::register_functions(&ctx).unwrap();
-    ctx.register_csv("pipes", dir.to_str().unwrap(), CsvReadOptions::new())
-        .await
-        .unwrap();
-    let plan = ctx.sql(SYNTH).await.unwrap().create_physical_plan().await.unwrap();
-    let batches = datafusion::physical_plan::collect(plan.clone(), ctx.task_ctx())
-        .await
-        .unwrap();
+    let (plan, batches) = run_with_plan(&ctx, dir.to_str().unwrap()).await;
     assert!(
         metric_sum(plan.as_ref(), "skipped_aggregation_rows") > 0,
         "partial aggregation was not skipped"
@@ -316,16 +310,23 @@ async fn a_memory_limited_group_by_spills_and_gives_the_same_numbers() {
         .with_sort_spill_reservation_bytes(256 << 10);
     let ctx = SessionContext::new_with_config_rt(config, runtime);
     ratesheet::register_functions(&ctx).unwrap();
-    ctx.register_csv("pipes", dir.to_str().unwrap(), CsvReadOptions::new())
-        .await
-        .unwrap();
+    let (plan, batches) = run_with_plan(&ctx, dir.to_str().unwrap()).await;
+    assert_same("spilled", &want, &fingerprint(&batches), 1e-12);
+    assert!(spill_count(plan.as_ref()) > 0, "the memory-limited run did not spill");
+    std::fs::remove_dir_all(&dir).ok();
+}
+
+/// Runs the synthetic query over the CSV parts in `dir`, keeping the executed plan for its metrics.
+async fn run_with_plan(
+    ctx: &SessionContext,
+    dir: &str,
+) -> (Arc<dyn datafusion::physical_plan::ExecutionPlan>, Vec<RecordBatch>) {
+    ctx.register_csv("pipes", dir, CsvReadOptions::new()).await.unwrap();
     let plan = ctx.sql(SYNTH).await.unwrap().create_physical_plan().await.unwrap();
     let batches = datafusion::physical_plan::collect(plan.clone(), ctx.task_ctx())
         .await
         .unwrap();
-    assert_same("spilled", &want, &fingerprint(&batches), 1e-12);
-    assert!(spill_count(plan.as_ref()) > 0, "the memory-limited run did not spill");
-    std::fs::remove_dir_all(&dir).ok();
+    (plan, batches)
 }
 
 fn metric_sum(plan: &dyn datafusion::physical_plan::ExecutionPlan, name: &str) -> usize {
