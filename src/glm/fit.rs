@@ -543,6 +543,28 @@ fn validate<F: Family>(family: &F, n: usize, input: &FitInput<'_>) -> Result<(),
     Ok(())
 }
 
+/// Pearson residuals (y_i - mu_i) sqrt(w_i / V(mu_i)); their squares add up to Pearson's X².
+pub fn pearson_residuals<F: Family>(family: &F, y: &[f64], mu: &[f64], weights: Option<&[f64]>) -> Vec<f64> {
+    (0..y.len())
+        .map(|i| {
+            let w = weights.map_or(1.0, |w| w[i]);
+            (y[i] - mu[i]) * (w / family.variance(mu[i])).sqrt()
+        })
+        .collect()
+}
+
+/// Deviance residuals sign(y_i - mu_i) sqrt(w_i d(y_i, mu_i)); their squares add up to the
+/// deviance.
+pub fn deviance_residuals<F: Family>(family: &F, y: &[f64], mu: &[f64], weights: Option<&[f64]>) -> Vec<f64> {
+    (0..y.len())
+        .map(|i| {
+            let w = weights.map_or(1.0, |w| w[i]);
+            let d = (w * family.unit_deviance(y[i], mu[i])).max(0.0).sqrt();
+            if y[i] < mu[i] { -d } else { d }
+        })
+        .collect()
+}
+
 /// log(exposure) for a rate model, refusing exposures that are not finite and positive.
 pub fn log_exposure(exposure: &[f64]) -> Result<Vec<f64>, FitError> {
     exposure

@@ -25,5 +25,8 @@ pub use design::{
 };
 pub use error::FitError;
 pub use family::{Family, Gaussian, Poisson};
-pub use fit::{FitInput, FitIssue, FitOptions, FitStats, GlmFit, ScoreTest, TermState, fit, log_exposure};
+pub use fit::{
+    FitInput, FitIssue, FitOptions, FitStats, GlmFit, ScoreTest, TermState, deviance_residuals, fit, log_exposure,
+    pearson_residuals,
+};
 pub use inference::{ModelTest, SeType, TermRow, model_test, term_table};

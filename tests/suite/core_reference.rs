@@ -132,7 +132,7 @@ fn check_coefficients(label: &str, fit: &GlmFit, se: SeType, coefs: &[Value]) {
     }
 }
 
-fn check_fit(label: &str, fit: &GlmFit, block: &Value, rownames: &[String]) {
+fn check_fit(label: &str, fit: &GlmFit, block: &Value, rownames: &[String], y: &[f64]) {
     assert_eq!(fit.status(), "ok", "{label}");
     assert!(fit.converged, "{label}");
     let s = &fit.stats;
@@ -193,6 +193,25 @@ fn check_fit(label: &str, fit: &GlmFit, block: &Value, rownames: &[String]) {
         1e-15,
     );
     check_coefficients(label, fit, SeType::Model, block["coefficients"].as_array().unwrap());
+    // Residuals: their squares add up to the reference Pearson X² and deviance.
+    if fit.fitted.len() == rownames.len() {
+        let pr = ratesheet::glm::pearson_residuals(&Poisson, y, &fit.fitted, None);
+        let dr = ratesheet::glm::deviance_residuals(&Poisson, y, &fit.fitted, None);
+        close(
+            &format!("{label} sum pearson residual^2"),
+            pr.iter().map(|r| r * r).sum(),
+            f(&block["pearson_chi2"]),
+            EST,
+            1e-11,
+        );
+        close(
+            &format!("{label} sum deviance residual^2"),
+            dr.iter().map(|r| r * r).sum(),
+            f(&block["deviance"]),
+            EST,
+            1e-11,
+        );
+    }
     for want in block.get("fitted_mean").and_then(Value::as_array).into_iter().flatten() {
         let key = level_text(&want["rownames"]);
         let i = rownames.iter().position(|r| *r == key).unwrap();
@@ -235,7 +254,8 @@ fn check_dataset(name: &str) -> usize {
             model["response"].as_str().unwrap(),
             model["exposure"].as_str(),
         );
-        check_fit(&label, &fit, &model["poisson"], table.text("rownames"));
+        let y = table.num(model["response"].as_str().unwrap());
+        check_fit(&label, &fit, &model["poisson"], table.text("rownames"), &y);
         checked += 1;
     }
     for per in expected
@@ -255,7 +275,8 @@ fn check_dataset(name: &str) -> usize {
                 per["response"].as_str().unwrap(),
                 per["exposure"].as_str(),
             );
-            check_fit(&label, &fit, &group["poisson"], sub.text("rownames"));
+            let y = sub.num(per["response"].as_str().unwrap());
+            check_fit(&label, &fit, &group["poisson"], sub.text("rownames"), &y);
             checked += 1;
         }
     }
