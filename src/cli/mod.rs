@@ -6,3 +6,4 @@
 pub mod render;
 pub mod session;
 pub mod shell;
+pub mod spreadsheet;

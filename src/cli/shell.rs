@@ -63,7 +63,7 @@ pub const COMMANDS: &[Command] = &[
     Command {
         name: "save",
         args: "FILE [replace]",
-        help: "write the last result to FILE (.csv, .json lines or .parquet); 'replace' overwrites",
+        help: "write the last result to FILE (.csv, .json lines, .parquet, or .xlsx with fits one row per term); 'replace' overwrites",
     },
     Command {
         name: "quit",
@@ -460,7 +460,11 @@ pub fn save_batches(batches: &[RecordBatch], path: &str, replace: bool) -> std::
                 file.write_all(render(batches, &style)?.as_bytes())?;
                 file.sync_all()?;
             }
-            other => return Err(format!("cannot save as '.{other}': use .csv, .json or .parquet").into()),
+            "xlsx" => {
+                drop(file);
+                super::spreadsheet::write_xlsx(batches, &tmp)?;
+            }
+            other => return Err(format!("cannot save as '.{other}': use .csv, .json, .parquet or .xlsx").into()),
         }
         std::fs::rename(&tmp, target)?;
         Ok(())

@@ -116,3 +116,42 @@ fn save_writes_the_last_result_and_never_overwrites_unasked() {
     assert!(leftovers.is_empty(), "temporary files left behind");
     std::fs::remove_dir_all(&home).ok();
 }
+
+/// XLSX output flattens fits to one row per (group, term); the workbook holds the term names.
+#[tokio::test]
+async fn xlsx_results_have_one_row_per_group_and_term() {
+    let ctx = datafusion::prelude::SessionContext::new();
+    ratesheet::register_functions(&ctx).unwrap();
+    let path = concat!(env!("CARGO_MANIFEST_DIR"), "/demo-parquet/pipe_breaks.parquet");
+    ctx.register_parquet("pipe_breaks", path, Default::default())
+        .await
+        .unwrap();
+    let batches = ctx
+        .sql("SELECT district, poisson_fit(breaks, km_years, material) AS fit FROM pipe_breaks GROUP BY district")
+        .await
+        .unwrap()
+        .collect()
+        .await
+        .unwrap();
+    let home = temp_home("xlsx");
+    let target = home.join("fits.xlsx");
+    let rows = ratesheet::cli::shell::save_batches(&batches, target.to_str().unwrap(), false).unwrap();
+    assert_eq!(rows, 10);
+    let mut archive = zip::ZipArchive::new(std::fs::File::open(&target).unwrap()).unwrap();
+    let mut sheet = String::new();
+    std::io::Read::read_to_string(&mut archive.by_name("xl/worksheets/sheet1.xml").unwrap(), &mut sheet).unwrap();
+    // A header row plus 10 districts x 5 terms.
+    assert_eq!(
+        sheet.matches("<row ").count(),
+        1 + 10 * 5,
+        "{}",
+        &sheet[..sheet.len().min(400)]
+    );
+    let mut strings = String::new();
+    std::io::Read::read_to_string(&mut archive.by_name("xl/sharedStrings.xml").unwrap(), &mut strings).unwrap();
+    assert!(
+        strings.contains("material=steel") && strings.contains("fit.rate_ratio"),
+        "{strings}"
+    );
+    std::fs::remove_dir_all(&home).ok();
+}
