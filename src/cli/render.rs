@@ -182,9 +182,11 @@ fn cell(col: &ArrayRef, fmt: &ArrayFormatter<'_>, name: &str, r: usize, digits: 
                 true,
             )
         }
-        DataType::Float32 | DataType::Decimal128(_, _) => {
-            let v: f64 = fmt.value(r).to_string().parse().unwrap_or(f64::NAN);
-            (format_number(v, digits), true)
+        DataType::Float32 | DataType::Decimal128(_, _) | DataType::Decimal256(_, _) => {
+            match datafusion::arrow::compute::cast(&col.slice(r, 1), &DataType::Float64) {
+                Ok(v) => (format_number(v.as_primitive::<Float64Type>().value(0), digits), true),
+                Err(_) => (fmt.value(r).to_string(), true),
+            }
         }
         t if t.is_integer() => (fmt.value(r).to_string(), true),
         DataType::Struct(_) if is_fit(col.as_struct()) => (fit_summary(col.as_struct(), r, digits), false),
