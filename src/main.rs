@@ -6,7 +6,9 @@ use std::process::ExitCode;
 use clap::Parser;
 use ratesheet::cli::render::{Format, Style, render};
 use ratesheet::cli::session::{SessionSettings, new_session, open_table};
-use ratesheet::cli::shell::Shell;
+use ratesheet::cli::progress::collect_with_progress;
+use ratesheet::cli::shell::{Shell, save_batches};
+use std::io::IsTerminal;
 
 #[derive(Parser, Debug)]
 #[command(
@@ -15,7 +17,8 @@ use ratesheet::cli::shell::Shell;
     about = "Per-group Poisson rate models in SQL over Parquet and CSV files",
     after_help = "Examples:\n  ratesheet pipes.parquet                      open the shell with table 'pipes'\n  \
                   ratesheet data/ -e 'SELECT district, poisson_fit(breaks, km_years, material) AS fit FROM data GROUP BY district;'\n  \
-                  ratesheet breaks.csv --script fits.sql --format csv"
+                  ratesheet breaks.csv --script fits.sql --format csv\n  \
+                  ratesheet breaks.csv --script fits.sql --save-to fits.xlsx   results straight to a spreadsheet"
 )]
 struct Args {
     /// Parquet/CSV files or folders to open as tables (named after the file stem).
@@ -38,6 +41,15 @@ struct Args {
     /// Memory limit, e.g. 512M or 4G; aggregates spill to disk beyond it.
     #[arg(long, value_name = "BYTES")]
     memory_limit: Option<String>,
+    /// Never show the progress line (it shows only on a terminal, for statements over a second).
+    #[arg(long)]
+    no_progress: bool,
+    /// Also write the last statement's result to FILE (.csv, .json, .parquet or .xlsx).
+    #[arg(long, value_name = "FILE")]
+    save_to: Option<String>,
+    /// Let --save-to overwrite an existing file.
+    #[arg(long, requires = "save_to")]
+    replace: bool,
 }
 
 fn parse_bytes(s: &str) -> Result<usize, String> {
@@ -127,6 +139,10 @@ async fn main() -> ExitCode {
         return run_demo(&ctx, args.digits).await;
     }
     let interactive = args.execute.is_none() && args.script.is_none();
+    if interactive && args.save_to.is_some() {
+        eprintln!("error: --save-to needs statements to run (-e SQL or --script FILE); in the shell use ~save");
+        return ExitCode::from(2);
+    }
     for p in &args.paths {
         match open_table(&ctx, p, None).await {
             Ok(name) if interactive => eprintln!("opened {p} as {name}"),
@@ -155,6 +171,7 @@ async fn main() -> ExitCode {
         },
         (None, None) => {
             let mut shell = Shell::new(ctx, style);
+            shell.progress &= !args.no_progress;
             return match shell.run().await {
                 Ok(()) => ExitCode::SUCCESS,
                 Err(e) => {
@@ -164,12 +181,26 @@ async fn main() -> ExitCode {
             };
         }
     };
+    let progress = !args.no_progress && std::io::stderr().is_terminal();
+    let mut last = Vec::new();
     for (k, sql) in statements(&text).iter().enumerate() {
-        let result = async { ctx.sql(sql).await?.collect().await }.await;
-        match result.and_then(|b| render(&b, &style)) {
-            Ok(out) => print!("{out}"),
+        let result = collect_with_progress(&ctx, sql, progress).await;
+        match result.and_then(|b| render(&b, &style).map(|out| (b, out))) {
+            Ok((batches, out)) => {
+                print!("{out}");
+                last = batches;
+            }
             Err(e) => {
                 eprintln!("error in statement {}: {e}", k + 1);
+                return ExitCode::FAILURE;
+            }
+        }
+    }
+    if let Some(path) = &args.save_to {
+        match save_batches(&last, path, args.replace, "add --replace to overwrite it") {
+            Ok(rows) => eprintln!("wrote {rows} rows to {path}"),
+            Err(e) => {
+                eprintln!("error: {e}");
                 return ExitCode::FAILURE;
             }
         }

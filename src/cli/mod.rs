@@ -3,7 +3,9 @@
 //! This layer only wires things together: it opens files as DataFusion tables, runs SQL, and
 //! renders Arrow batches. Everything statistical lives in `glm` and `sql`.
 
+pub mod progress;
 pub mod render;
 pub mod session;
 pub mod shell;
 pub mod spreadsheet;
+pub mod workbook;

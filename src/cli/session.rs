@@ -75,6 +75,7 @@ fn format_of(path: &str) -> Result<&'static str> {
     {
         Some("parquet") | Some("parq") => Some("parquet"),
         Some("csv") => Some("csv"),
+        Some("xlsx") => Some("xlsx"),
         _ => None,
     };
     let p = Path::new(path);
@@ -119,20 +120,54 @@ fn walk(dir: &Path) -> Vec<std::path::PathBuf> {
     out
 }
 
-/// Opens `path` as a table named `name` (or a name derived from the path). Returns the name.
-pub async fn open_table(ctx: &SessionContext, path: &str, name: Option<&str>) -> Result<String> {
-    let mut name = name.map(str::to_string).unwrap_or_else(|| table_name_for(path));
-    if ctx.table_exist(name.as_str())? {
-        let base = name.clone();
-        let mut k = 2;
-        while ctx.table_exist(format!("{base}_{k}").as_str())? {
-            k += 1;
-        }
-        name = format!("{base}_{k}");
-        eprintln!("note: a table named {base} is already open; {path} opens as {name}");
+/// `name`, or `name_2`, `name_3`, ... if a table of that name is open already.
+fn free_name(ctx: &SessionContext, name: String, path: &str) -> Result<String> {
+    if !ctx.table_exist(name.as_str())? {
+        return Ok(name);
     }
+    let mut k = 2;
+    while ctx.table_exist(format!("{name}_{k}").as_str())? {
+        k += 1;
+    }
+    let free = format!("{name}_{k}");
+    eprintln!("note: a table named {name} is already open; {path} opens as {free}");
+    Ok(free)
+}
+
+/// Opens `path` as a table named `name` (or a name derived from the path). Returns the name;
+/// a workbook opens one table per sheet (`name_sheet` when it has several) and returns the
+/// names separated by ", ".
+pub async fn open_table(ctx: &SessionContext, path: &str, name: Option<&str>) -> Result<String> {
+    let base = name.map(str::to_string).unwrap_or_else(|| table_name_for(path));
+    let format = format_of(path)?;
+    if format == "xlsx" {
+        let sheets = super::workbook::read_workbook(path)?;
+        let mut names = Vec::new();
+        for sheet in &sheets {
+            let wanted = if sheets.len() == 1 {
+                base.clone()
+            } else {
+                format!("{base}_{}", table_name_for(&format!("{}.x", sheet.name)))
+            };
+            let name = free_name(ctx, wanted, path)?;
+            ctx.register_table(name.as_str(), super::workbook::sheet_table(sheet)?)?;
+            names.push(name);
+        }
+        return Ok(names.join(", "));
+    }
+    let files = files_of(path, format);
+    for f in &files {
+        if std::fs::metadata(f).is_ok_and(|m| m.len() == 0) {
+            return Err(DataFusionError::Plan(format!("{}: the file is empty (0 bytes)", f.display())));
+        }
+    }
+    let delimiter = if format == "csv" { csv_layout(&files)? } else { b',' };
+    if format == "parquet" {
+        same_parquet_schemas(&files)?;
+    }
+    let name = free_name(ctx, base, path)?;
     let with_path = |e: DataFusionError| DataFusionError::Plan(format!("{path}: {e}"));
-    match format_of(path)? {
+    match format {
         "parquet" => {
             let ext = if Path::new(path).is_dir() || path.contains('*') {
                 ".parquet"
@@ -148,7 +183,13 @@ pub async fn open_table(ctx: &SessionContext, path: &str, name: Option<&str>) ->
                 .map_err(with_path)?
         }
         _ => {
-            let options = CsvReadOptions::new().file_extension(".csv");
+            if delimiter != b',' {
+                eprintln!(
+                    "note: {path} is separated by {}, not commas; reading it that way",
+                    delimiter_name(delimiter)
+                );
+            }
+            let options = CsvReadOptions::new().file_extension(".csv").delimiter(delimiter);
             ctx.register_csv(name.as_str(), path, options)
                 .await
                 .map_err(with_path)?
@@ -162,4 +203,112 @@ pub async fn open_table(ctx: &SessionContext, path: &str, name: Option<&str>) ->
         .await
         .map_err(with_path)?;
     Ok(name)
+}
+
+/// The files a path stands for (a folder's files of the format; nothing for globs, which
+/// DataFusion expands itself).
+fn files_of(path: &str, format: &str) -> Vec<std::path::PathBuf> {
+    let p = Path::new(path);
+    if p.is_dir() {
+        let mut files: Vec<_> = walk(p)
+            .into_iter()
+            .filter(|f| f.extension().and_then(|e| e.to_str()).is_some_and(|e| e.eq_ignore_ascii_case(format)))
+            .collect();
+        files.sort();
+        files
+    } else if p.is_file() {
+        vec![p.to_path_buf()]
+    } else {
+        Vec::new()
+    }
+}
+
+fn delimiter_name(d: u8) -> &'static str {
+    match d {
+        b';' => "semicolons",
+        b'\t' => "tabs",
+        b'|' => "vertical bars",
+        _ => "commas",
+    }
+}
+
+/// Checks the CSV files of one table and finds their delimiter: each header must be valid
+/// UTF-8, be followed by at least one data line, and be the same in every file. The delimiter
+/// is the one of `,` `;` tab `|` that occurs most often in the header (commas win ties).
+fn csv_layout(files: &[std::path::PathBuf]) -> Result<u8> {
+    use std::io::{BufRead, BufReader};
+    let mut first: Option<(String, &std::path::PathBuf)> = None;
+    for f in files {
+        let name = f.display();
+        let file = std::fs::File::open(f).map_err(|e| DataFusionError::Plan(format!("{name}: {e}")))?;
+        let mut lines = BufReader::new(file).split(b'\n');
+        let header = match lines.next() {
+            Some(Ok(h)) => h,
+            Some(Err(e)) => return Err(DataFusionError::Plan(format!("{name}: {e}"))),
+            None => return Err(DataFusionError::Plan(format!("{name}: the file is empty"))),
+        };
+        let header = String::from_utf8(header)
+            .map_err(|_| DataFusionError::Plan(format!("{name}: the header line is not valid UTF-8 text")))?;
+        let header = header.trim_end_matches('\r').to_string();
+        let has_data = lines.any(|l| l.is_ok_and(|l| !l.iter().all(u8::is_ascii_whitespace)));
+        if !has_data {
+            return Err(DataFusionError::Plan(format!(
+                "{name}: the file has a header line but no data rows"
+            )));
+        }
+        match &first {
+            None => first = Some((header, f)),
+            Some((h, g)) if *h != header => {
+                return Err(DataFusionError::Plan(format!(
+                    "{} and {name} have different header lines; a folder opens as one table only when its files share one layout",
+                    g.display()
+                )));
+            }
+            Some(_) => {}
+        }
+    }
+    let Some((header, _)) = first else { return Ok(b',') };
+    let count = |d: u8| header.bytes().filter(|&b| b == d).count();
+    Ok([b';', b'\t', b'|']
+        .into_iter()
+        .filter(|&d| count(d) > count(b','))
+        .max_by_key(|&d| count(d))
+        .unwrap_or(b','))
+}
+
+/// Parquet parts of one table must agree on column names and types.
+fn same_parquet_schemas(files: &[std::path::PathBuf]) -> Result<()> {
+    use datafusion::parquet::arrow::arrow_reader::ParquetRecordBatchReaderBuilder;
+    let mut first: Option<(Vec<(String, String)>, &std::path::PathBuf)> = None;
+    if files.len() < 2 {
+        return Ok(());
+    }
+    for f in files {
+        let name = f.display();
+        let file = std::fs::File::open(f).map_err(|e| DataFusionError::Plan(format!("{name}: {e}")))?;
+        let builder = ParquetRecordBatchReaderBuilder::try_new(file)
+            .map_err(|e| DataFusionError::Plan(format!("{name}: not a readable Parquet file: {e}")))?;
+        let columns: Vec<(String, String)> = builder
+            .schema()
+            .fields()
+            .iter()
+            .map(|c| (c.name().clone(), c.data_type().to_string()))
+            .collect();
+        match &first {
+            None => first = Some((columns, f)),
+            Some((c, g)) if *c != columns => {
+                let describe = |cols: &[(String, String)]| {
+                    cols.iter().map(|(n, t)| format!("{n} {t}")).collect::<Vec<_>>().join(", ")
+                };
+                return Err(DataFusionError::Plan(format!(
+                    "{} ({}) and {name} ({}) have different columns; a folder opens as one table only when its files share one schema",
+                    g.display(),
+                    describe(c),
+                    describe(&columns)
+                )));
+            }
+            Some(_) => {}
+        }
+    }
+    Ok(())
 }

@@ -13,6 +13,7 @@ use rustyline::error::ReadlineError;
 use rustyline::history::DefaultHistory;
 use rustyline::{Context, Editor, Helper, Highlighter, Hinter, Validator};
 
+use super::progress::collect_with_progress;
 use super::render::{Format, Style, render};
 use super::session::open_table;
 
@@ -173,6 +174,8 @@ pub struct Shell {
     ctx: SessionContext,
     style: Style,
     timing: bool,
+    /// Show a progress line on stderr for long statements (only when stderr is a terminal).
+    pub progress: bool,
     last: Vec<RecordBatch>,
     completion_words: Arc<Mutex<Vec<String>>>,
 }
@@ -183,6 +186,7 @@ impl Shell {
             ctx,
             style,
             timing: true,
+            progress: std::io::IsTerminal::is_terminal(&std::io::stderr()),
             last: Vec::new(),
             completion_words: Arc::default(),
         }
@@ -250,7 +254,8 @@ impl Shell {
         let start = Instant::now();
         let ctx = self.ctx.clone();
         let owned = sql.to_string();
-        let task = tokio::spawn(async move { ctx.sql(&owned).await?.collect().await });
+        let progress = self.progress;
+        let task = tokio::spawn(async move { collect_with_progress(&ctx, &owned, progress).await });
         let abort = task.abort_handle();
         let outcome = tokio::select! {
             r = task => r,
@@ -349,7 +354,12 @@ impl Shell {
                 _ => eprintln!("usage: {PREFIX}timing on|off"),
             },
             "save" => match args.first() {
-                Some(path) => match save_batches(&self.last, path, args.get(1) == Some(&"replace")) {
+                Some(path) => match save_batches(
+                    &self.last,
+                    path,
+                    args.get(1) == Some(&"replace"),
+                    &format!("add 'replace' to overwrite it: {PREFIX}save {path} replace"),
+                ) {
                     Ok(rows) => println!("wrote {rows} rows to {path}"),
                     Err(e) => eprintln!("error: {e}"),
                 },
@@ -422,13 +432,17 @@ fn save_history(editor: &mut Editor<Completion, DefaultHistory>, path: &std::pat
 }
 
 /// Writes batches to `path` (format from the extension) through a temporary file renamed into
-/// place; refuses to overwrite an existing file unless `replace`.
-pub fn save_batches(batches: &[RecordBatch], path: &str, replace: bool) -> std::result::Result<usize, String> {
+/// place; refuses to overwrite an existing file unless `replace` (`how_to_replace` tells the
+/// user how to ask).
+pub fn save_batches(
+    batches: &[RecordBatch],
+    path: &str,
+    replace: bool,
+    how_to_replace: &str,
+) -> std::result::Result<usize, String> {
     let target = std::path::Path::new(path);
     if target.exists() && !replace {
-        return Err(format!(
-            "{path} exists; add 'replace' to overwrite it: {PREFIX}save {path} replace"
-        ));
+        return Err(format!("{path} exists; {how_to_replace}"));
     }
     let Some(first) = batches.first() else {
         return Err("there is no result to save yet; run a query first".into());

@@ -32,9 +32,10 @@ use super::fit::{
     FitInput, FitOptions, GlmFit, TermState, aux_regression_t, fit_with_row_count, set_information_criteria,
 };
 
-/// Per-pattern sums of the original rows.
-#[derive(Debug, Clone, Copy, Default)]
-struct Sums {
+/// Per-pattern sums of the original rows. Every field is a plain sum, so sums of disjoint row
+/// sets merge by addition ([`Sums::merge`]).
+#[derive(Debug, Clone, Copy, Default, PartialEq)]
+pub struct Sums {
     rows: usize,
     y: f64,
     e: f64,
@@ -50,18 +51,112 @@ struct Sums {
     a: f64,
 }
 
+/// ln Γ(y+1) and y·ln y for the small whole counts that make up most rows.
+struct SmallCounts {
+    log_gamma: [f64; SMALL_COUNTS],
+    y_log_y: [f64; SMALL_COUNTS],
+}
+
+const SMALL_COUNTS: usize = 256;
+
+static SMALL: std::sync::LazyLock<SmallCounts> = std::sync::LazyLock::new(|| {
+    let mut t = SmallCounts {
+        log_gamma: [0.0; SMALL_COUNTS],
+        y_log_y: [0.0; SMALL_COUNTS],
+    };
+    for k in 0..SMALL_COUNTS {
+        let y = k as f64;
+        t.log_gamma[k] = ln_gamma(y + 1.0);
+        t.y_log_y[k] = xlogy(y, y);
+    }
+    t
+});
+
 impl Sums {
-    fn add(&mut self, y: f64, e: f64) {
+    /// The number of rows summed.
+    pub fn rows(&self) -> usize {
+        self.rows
+    }
+    /// Σy.
+    pub fn total_count(&self) -> f64 {
+        self.y
+    }
+    /// ΣE.
+    pub fn total_exposure(&self) -> f64 {
+        self.e
+    }
+
+    /// The sums as an array (for state encoding), in a fixed order; [`Sums::from_array`] inverts it.
+    pub fn to_array(&self) -> [f64; 13] {
+        [
+            self.rows as f64,
+            self.y,
+            self.e,
+            self.yy,
+            self.ye,
+            self.ee,
+            self.y_log_y,
+            self.y_log_e,
+            self.log_gamma,
+            self.yy_over_e,
+            self.a2_over_e2,
+            self.ay_over_e,
+            self.a,
+        ]
+    }
+
+    /// Sums from [`Sums::to_array`]; None unless the row count is a whole number >= 1 and the
+    /// count and exposure totals are finite with exposure > 0.
+    pub fn from_array(v: [f64; 13]) -> Option<Sums> {
+        let ok = v[0] >= 1.0 && v[0].fract() == 0.0 && v[0] < 9.0e15 && v[1] >= 0.0 && v[2] > 0.0;
+        (ok && v.iter().all(|x| x.is_finite())).then(|| Sums {
+            rows: v[0] as usize,
+            y: v[1],
+            e: v[2],
+            yy: v[3],
+            ye: v[4],
+            ee: v[5],
+            y_log_y: v[6],
+            y_log_e: v[7],
+            log_gamma: v[8],
+            yy_over_e: v[9],
+            a2_over_e2: v[10],
+            ay_over_e: v[11],
+            a: v[12],
+        })
+    }
+
+    /// Adds the sums of another, disjoint set of rows of the same pattern.
+    pub fn merge(&mut self, o: &Sums) {
+        self.rows += o.rows;
+        self.y += o.y;
+        self.e += o.e;
+        self.yy += o.yy;
+        self.ye += o.ye;
+        self.ee += o.ee;
+        self.y_log_y += o.y_log_y;
+        self.y_log_e += o.y_log_e;
+        self.log_gamma += o.log_gamma;
+        self.yy_over_e += o.yy_over_e;
+        self.a2_over_e2 += o.a2_over_e2;
+        self.ay_over_e += o.ay_over_e;
+        self.a += o.a;
+    }
+
+    /// Adds one row: count y (finite, >= 0) with exposure e (finite, > 0).
+    pub fn add(&mut self, y: f64, e: f64) {
         let a = y * y - y;
+        let small = (y.fract() == 0.0 && y < SMALL_COUNTS as f64).then_some(y as usize);
         self.rows += 1;
         self.y += y;
         self.e += e;
         self.yy += y * y;
         self.ye += y * e;
         self.ee += e * e;
-        self.y_log_y += xlogy(y, y);
-        self.y_log_e += xlogy(y, e);
-        self.log_gamma += ln_gamma(y + 1.0);
+        let table = &*SMALL;
+        self.y_log_y += small.map_or_else(|| xlogy(y, y), |k| table.y_log_y[k]);
+        self.y_log_e += if y == 0.0 { 0.0 } else { y * e.ln() };
+        self.log_gamma += small.map_or_else(|| ln_gamma(y + 1.0), |k| table.log_gamma[k]);
         self.yy_over_e += y * y / e;
         self.a2_over_e2 += a * a / (e * e);
         self.ay_over_e += a * y / e;
@@ -168,6 +263,25 @@ pub fn fit_poisson_collapsed(
         })
         .collect();
     let pseudo = Design::from_columns(m, columns)?;
+    Ok(CollapsedFit {
+        fit: fit_poisson_patterns(&pseudo, &sums, opts)?,
+        patterns: m,
+        pattern_of_row,
+    })
+}
+
+/// Fits a Poisson rate model to covariate patterns: row k of `pseudo` is the design row of
+/// pattern k and `sums[k]` the sums of its original rows (each pattern's rows must share the
+/// design row). Reports the statistics of the original rows.
+pub fn fit_poisson_patterns(pseudo: &Design, sums: &[Sums], opts: FitOptions) -> Result<GlmFit, FitError> {
+    if sums.len() != pseudo.n_rows() {
+        return Err(FitError::LengthMismatch {
+            what: "pattern sums".into(),
+            expected: pseudo.n_rows(),
+            found: sums.len(),
+        });
+    }
+    let n: usize = sums.iter().map(|s| s.rows).sum();
     let py: Vec<f64> = sums.iter().map(|s| s.y).collect();
     let poffset: Vec<f64> = sums.iter().map(|s| s.e.ln()).collect();
     let input = FitInput {
@@ -175,13 +289,9 @@ pub fn fit_poisson_collapsed(
         offset: Some(&poffset),
         weights: None,
     };
-    let mut fit = fit_with_row_count(&Poisson, &pseudo, input, opts, n)?;
-    restate_row_statistics(&mut fit, &pseudo, &sums, n);
-    Ok(CollapsedFit {
-        fit,
-        patterns: m,
-        pattern_of_row,
-    })
+    let mut fit = fit_with_row_count(&Poisson, pseudo, input, opts, n)?;
+    restate_row_statistics(&mut fit, pseudo, sums, n);
+    Ok(fit)
 }
 
 /// Replaces the pattern-level statistics of `fit` by those of the original rows.

@@ -11,49 +11,25 @@
 //! and invalid rows. A NULL inside a list (as produced by `convert_to_state`) counts as a
 //! skipped row when merged.
 
-use std::collections::HashMap;
 use std::sync::Arc;
 
 use datafusion::arrow::array::{
     Array, ArrayRef, AsArray, BooleanArray, Float64Array, ListArray, StringArray, UInt64Array,
 };
 use datafusion::arrow::buffer::OffsetBuffer;
-use datafusion::arrow::compute::cast;
-use datafusion::arrow::datatypes::{DataType, Field, FieldRef, Float64Type};
+use datafusion::arrow::datatypes::{DataType, Field, FieldRef};
 use datafusion::error::{DataFusionError, Result};
 use datafusion::logical_expr::EmitTo;
 
+use super::batch::{BatchColumn, BatchInputs, Dictionary, passes};
 use super::options::InvalidRows;
 use super::spec::{FitKind, FitSpec};
 
-/// Interned factor labels.
-#[derive(Debug, Default, Clone)]
-pub struct Dictionary {
-    codes: HashMap<String, u32>,
-    pub labels: Vec<String>,
-}
-
-impl Dictionary {
-    fn intern(&mut self, label: &str) -> u32 {
-        if let Some(&c) = self.codes.get(label) {
-            return c;
-        }
-        let c = self.labels.len() as u32;
-        self.labels.push(label.to_string());
-        self.codes.insert(label.to_string(), c);
-        c
-    }
-
-    fn bytes(&self) -> usize {
-        self.labels.iter().map(|l| 2 * l.len() + 48).sum()
-    }
-}
-
-/// One buffered predictor column.
+/// One buffered predictor column (factor codes index the predictor's dictionary).
 #[derive(Debug, Clone)]
 pub enum Column {
     Numeric(Vec<f64>),
-    Factor { codes: Vec<u32>, dictionary: Dictionary },
+    Factor(Vec<u32>),
 }
 
 /// The buffered rows of all groups.
@@ -66,20 +42,10 @@ pub struct GroupRows {
     /// Exposure per row (1 for count-only and linear fits).
     pub exposure: Vec<f64>,
     pub columns: Vec<Column>,
+    /// One per predictor (empty for numeric ones).
+    pub dictionaries: Vec<Dictionary>,
     pub skipped: Vec<u64>,
     pub invalid: Vec<u64>,
-}
-
-/// Input arrays of one batch, cast to the buffer's types.
-struct Inputs {
-    y: Float64Array,
-    exposure: Option<Float64Array>,
-    predictors: Vec<Input>,
-}
-
-enum Input {
-    Numeric(Float64Array),
-    Factor(StringArray),
 }
 
 impl GroupRows {
@@ -89,10 +55,7 @@ impl GroupRows {
             .iter()
             .map(|p| {
                 if p.factor {
-                    Column::Factor {
-                        codes: Vec::new(),
-                        dictionary: Dictionary::default(),
-                    }
+                    Column::Factor(Vec::new())
                 } else {
                     Column::Numeric(Vec::new())
                 }
@@ -100,6 +63,7 @@ impl GroupRows {
             .collect();
         GroupRows {
             kind,
+            dictionaries: vec![Dictionary::default(); spec.predictors.len()],
             spec,
             group: Vec::new(),
             y: Vec::new(),
@@ -128,50 +92,15 @@ impl GroupRows {
             .iter()
             .map(|c| match c {
                 Column::Numeric(v) => v.capacity() * 8,
-                Column::Factor { codes, dictionary } => codes.capacity() * 4 + dictionary.bytes(),
+                Column::Factor(codes) => codes.capacity() * 4,
             })
             .sum();
+        let dictionaries: usize = self.dictionaries.iter().map(Dictionary::bytes).sum();
         self.group.capacity() * 4
             + (self.y.capacity() + self.exposure.capacity()) * 8
             + (self.skipped.capacity() + self.invalid.capacity()) * 8
             + cols
-    }
-
-    fn inputs(&self, values: &[ArrayRef]) -> Result<Inputs> {
-        let lead = self.kind.leading();
-        let need = lead + self.columns.len();
-        if values.len() < need {
-            return Err(DataFusionError::Internal(format!(
-                "{}: expected {need} input columns, got {}",
-                self.kind.sql_name(),
-                values.len()
-            )));
-        }
-        let f64s = |a: &ArrayRef| -> Result<Float64Array> {
-            Ok(cast(a, &DataType::Float64)?.as_primitive::<Float64Type>().clone())
-        };
-        let y = f64s(&values[0])?;
-        let exposure = if self.kind == FitKind::PoissonRate {
-            Some(f64s(&values[1])?)
-        } else {
-            None
-        };
-        let predictors = self
-            .columns
-            .iter()
-            .zip(&values[lead..need])
-            .map(|(c, a)| {
-                Ok(match c {
-                    Column::Numeric(_) => Input::Numeric(f64s(a)?),
-                    Column::Factor { .. } => Input::Factor(cast(a, &DataType::Utf8)?.as_string::<i32>().clone()),
-                })
-            })
-            .collect::<Result<Vec<_>>>()?;
-        Ok(Inputs {
-            y,
-            exposure,
-            predictors,
-        })
+            + dictionaries
     }
 
     /// Adds input rows; `group_indices[i]` is the group of row i.
@@ -183,30 +112,42 @@ impl GroupRows {
         total_groups: usize,
     ) -> Result<()> {
         self.ensure_groups(total_groups);
-        let inputs = self.inputs(values)?;
+        let inputs = BatchInputs::new(self.kind, &self.spec, values, &mut self.dictionaries)?;
+        if filter.is_none() && inputs.no_nulls() && inputs.all_valid(self.kind) {
+            self.push_all(&inputs, group_indices);
+            return Ok(());
+        }
         for (row, &g) in group_indices.iter().enumerate() {
-            if filter.is_some_and(|f| !f.is_valid(row) || !f.value(row)) {
-                continue;
+            if passes(filter, row) {
+                self.push_row(&inputs, row, g)?;
             }
-            self.push_row(&inputs, row, g)?;
         }
         Ok(())
     }
 
-    fn push_row(&mut self, inputs: &Inputs, row: usize, g: usize) -> Result<()> {
-        let any_null = inputs.y.is_null(row)
-            || inputs.exposure.as_ref().is_some_and(|e| e.is_null(row))
-            || inputs.predictors.iter().any(|p| match p {
-                Input::Numeric(a) => a.is_null(row),
-                Input::Factor(a) => a.is_null(row),
-            });
-        if any_null {
+    /// Appends every row of a batch known to hold no NULL and no invalid value.
+    fn push_all(&mut self, inputs: &BatchInputs, group_indices: &[usize]) {
+        self.group.extend(group_indices.iter().map(|&g| g as u32));
+        self.y.extend_from_slice(inputs.y.values());
+        match &inputs.exposure {
+            Some(e) => self.exposure.extend_from_slice(e.values()),
+            None => self.exposure.resize(self.exposure.len() + inputs.len(), 1.0),
+        }
+        for (c, p) in self.columns.iter_mut().zip(&inputs.predictors) {
+            match (c, p) {
+                (Column::Numeric(v), BatchColumn::Numeric(a)) => v.extend_from_slice(a.values()),
+                (Column::Factor(codes), BatchColumn::Codes(c)) => codes.extend_from_slice(c),
+                _ => unreachable!("column kinds follow the spec"),
+            }
+        }
+    }
+
+    fn push_row(&mut self, inputs: &BatchInputs, row: usize, g: usize) -> Result<()> {
+        if inputs.is_null(row) {
             self.skipped[g] += 1;
             return Ok(());
         }
-        let y = inputs.y.value(row);
-        let e = inputs.exposure.as_ref().map_or(1.0, |a| a.value(row));
-        if let Some(problem) = self.check_row(y, e, inputs, row) {
+        if let Some(problem) = inputs.problem(self.kind, &self.spec, row) {
             match self.spec.settings.invalid {
                 InvalidRows::Skip => {
                     self.invalid[g] += 1;
@@ -216,47 +157,16 @@ impl GroupRows {
             }
         }
         self.group.push(g as u32);
-        self.y.push(y);
-        self.exposure.push(e);
+        self.y.push(inputs.y.value(row));
+        self.exposure.push(inputs.exposure_at(row));
         for (c, p) in self.columns.iter_mut().zip(&inputs.predictors) {
             match (c, p) {
-                (Column::Numeric(v), Input::Numeric(a)) => v.push(a.value(row)),
-                (Column::Factor { codes, dictionary }, Input::Factor(a)) => codes.push(dictionary.intern(a.value(row))),
+                (Column::Numeric(v), BatchColumn::Numeric(a)) => v.push(a.value(row)),
+                (Column::Factor(codes), BatchColumn::Codes(c)) => codes.push(c[row]),
                 _ => unreachable!("column kinds follow the spec"),
             }
         }
         Ok(())
-    }
-
-    /// Why a row is invalid, as a message naming the function, the argument and the value.
-    fn check_row(&self, y: f64, e: f64, inputs: &Inputs, row: usize) -> Option<String> {
-        let function = self.kind.sql_name();
-        let hint = "(add 'invalid=skip' to the options to skip and count such rows)";
-        let leading = self.kind.leading_names();
-        let bad_y = match self.kind {
-            FitKind::Linear => (!y.is_finite()).then_some("must be finite"),
-            _ if !y.is_finite() => Some("must be finite"),
-            _ if y < 0.0 => Some("must be >= 0"),
-            _ => None,
-        };
-        if let Some(why) = bad_y {
-            return Some(format!("{function}: {} value {y} {why} {hint}", leading[0]));
-        }
-        if self.kind == FitKind::PoissonRate && !(e.is_finite() && e > 0.0) {
-            return Some(format!("{function}: exposure value {e} must be finite and > 0 {hint}"));
-        }
-        for (spec, p) in self.spec.predictors.iter().zip(&inputs.predictors) {
-            if let Input::Numeric(a) = p {
-                let v = a.value(row);
-                if !v.is_finite() {
-                    return Some(format!(
-                        "{function}: predictor {} value {v} must be finite {hint}",
-                        spec.name
-                    ));
-                }
-            }
-        }
-        None
     }
 
     /// State field types, in order: response, exposure, predictors, skipped, invalid.
@@ -304,7 +214,7 @@ impl GroupRows {
             return Err(state_error("state arrays differ in length".into()));
         }
         let values: Vec<ArrayRef> = lists.iter().map(|l| l.values().clone()).collect();
-        let inputs = self.inputs(&values)?;
+        let inputs = BatchInputs::new(self.kind, &self.spec, &values, &mut self.dictionaries)?;
         for (r, &g) in group_indices.iter().enumerate() {
             if g >= total_groups {
                 return Err(state_error(format!("group index {g} out of range")));
@@ -345,13 +255,8 @@ impl GroupRows {
         kept.skipped = self.skipped[n..].to_vec();
         kept.invalid = self.invalid[n..].to_vec();
         // Codes are copied as they are, so both halves keep the same dictionaries.
-        for part in [&mut taken, &mut kept] {
-            for (dst, src) in part.columns.iter_mut().zip(&self.columns) {
-                if let (Column::Factor { dictionary: d, .. }, Column::Factor { dictionary: s, .. }) = (dst, src) {
-                    *d = s.clone();
-                }
-            }
-        }
+        taken.dictionaries = self.dictionaries.clone();
+        kept.dictionaries = self.dictionaries.clone();
         for i in 0..self.group.len() {
             let g = self.group[i] as usize;
             let (dst, g) = if g < n { (&mut taken, g) } else { (&mut kept, g - n) };
@@ -361,7 +266,7 @@ impl GroupRows {
             for (d, s) in dst.columns.iter_mut().zip(&self.columns) {
                 match (d, s) {
                     (Column::Numeric(d), Column::Numeric(s)) => d.push(s[i]),
-                    (Column::Factor { codes: d, .. }, Column::Factor { codes: s, .. }) => d.push(s[i]),
+                    (Column::Factor(d), Column::Factor(s)) => d.push(s[i]),
                     _ => unreachable!(),
                 }
             }
@@ -370,8 +275,9 @@ impl GroupRows {
         taken
     }
 
-    /// Row indices of each group, every group's rows in canonical order (sorted by value).
-    pub fn rows_by_group(&self) -> Vec<Vec<usize>> {
+    /// Row indices of each group, in arrival order: `order[offsets[g]..offsets[g + 1]]` are
+    /// group g's rows (a counting sort).
+    pub fn buckets(&self) -> (Vec<usize>, Vec<usize>) {
         let groups = self.num_groups();
         let mut counts = vec![0usize; groups + 1];
         for &g in &self.group {
@@ -386,13 +292,13 @@ impl GroupRows {
             order[next[g as usize]] = i;
             next[g as usize] += 1;
         }
-        (0..groups)
-            .map(|g| {
-                let mut rows = order[counts[g]..counts[g + 1]].to_vec();
-                rows.sort_by(|&a, &b| self.compare_rows(a, b));
-                rows
-            })
-            .collect()
+        (counts, order)
+    }
+
+    /// Puts rows in canonical order (by their values), so that fits do not depend on the order in
+    /// which partitions were merged.
+    pub fn sort_canonically(&self, rows: &mut [usize]) {
+        rows.sort_unstable_by(|&a, &b| self.compare_rows(a, b).then(a.cmp(&b)));
     }
 
     fn compare_rows(&self, a: usize, b: usize) -> std::cmp::Ordering {
@@ -400,10 +306,10 @@ impl GroupRows {
             .total_cmp(&self.y[b])
             .then(self.exposure[a].total_cmp(&self.exposure[b]))
             .then_with(|| {
-                for c in &self.columns {
+                for (c, dictionary) in self.columns.iter().zip(&self.dictionaries) {
                     let o = match c {
                         Column::Numeric(v) => v[a].total_cmp(&v[b]),
-                        Column::Factor { codes, dictionary } => {
+                        Column::Factor(codes) => {
                             dictionary.labels[codes[a] as usize].cmp(&dictionary.labels[codes[b] as usize])
                         }
                     };
@@ -415,17 +321,14 @@ impl GroupRows {
             })
     }
 
-    /// The state arrays of all groups in this buffer.
+    /// The state arrays of all groups in this buffer (rows in arrival order; the final stage
+    /// sorts them).
     pub fn to_state(&self) -> Result<Vec<ArrayRef>> {
-        let groups = self.rows_by_group();
-        let mut offsets = Vec::with_capacity(groups.len() + 1);
-        offsets.push(0i32);
-        let mut total = 0i32;
-        for rows in &groups {
-            total += rows.len() as i32;
-            offsets.push(total);
-        }
-        let order: Vec<usize> = groups.into_iter().flatten().collect();
+        let (counts, order) = self.buckets();
+        let total = i32::try_from(order.len())
+            .map_err(|_| state_error(format!("{} rows exceed one state batch (2^31)", order.len())))?;
+        debug_assert_eq!(counts.last().copied().unwrap_or(0) as i32, total);
+        let offsets: Vec<i32> = counts.iter().map(|&c| c as i32).collect();
         let offsets = OffsetBuffer::new(offsets.into());
         let list_of = |values: ArrayRef| -> ArrayRef {
             let field = Arc::new(Field::new("item", values.data_type().clone(), true));
@@ -436,10 +339,10 @@ impl GroupRows {
         if self.kind == FitKind::PoissonRate {
             out.push(list_of(floats(&self.exposure)));
         }
-        for c in &self.columns {
+        for (c, dictionary) in self.columns.iter().zip(&self.dictionaries) {
             out.push(match c {
                 Column::Numeric(v) => list_of(floats(v)),
-                Column::Factor { codes, dictionary } => list_of(Arc::new(StringArray::from_iter_values(
+                Column::Factor(codes) => list_of(Arc::new(StringArray::from_iter_values(
                     order.iter().map(|&i| dictionary.labels[codes[i] as usize].as_str()),
                 ))),
             });

@@ -17,9 +17,12 @@ use datafusion::logical_expr::{
     Accumulator, AggregateUDF, AggregateUDFImpl, Documentation, EmitTo, GroupsAccumulator, Signature, Volatility,
 };
 
+use super::batch::Dictionary;
 use super::buffer::{Column, GroupRows};
+use super::patterns::GroupPatterns;
 use super::result::{FitColumns, GroupResult, PredictorInfo, TermPart, fit_type};
 use super::spec::{FitKind, FitSpec, classify, is_numeric_type, resolve_call, spec_at_execution};
+use crate::glm::collapse::{Sums, fit_poisson_patterns};
 use crate::glm::{
     Design, DesignSpec, FactorColumn, FitInput, Gaussian, Poisson, Predictor, PredictorValues, fit, term_table,
 };
@@ -83,6 +86,10 @@ impl AggregateUDFImpl for FitFunction {
                         )));
                     }
                     Ok(DataType::Float64)
+                } else if t.is_integer() {
+                    // Integer predictors keep an integer type: it marks designs whose rows can be
+                    // collapsed into covariate patterns (see `patterns`).
+                    Ok(DataType::Int64)
                 } else if is_numeric_type(t) {
                     Ok(DataType::Float64)
                 } else {
@@ -98,7 +105,12 @@ impl AggregateUDFImpl for FitFunction {
 
     fn state_fields(&self, args: StateFieldsArgs) -> Result<Vec<FieldRef>> {
         let spec = spec_from_fields(self.kind, args.input_fields)?;
-        Ok(GroupRows::state_fields(self.kind, &spec, args.name))
+        let types: Vec<DataType> = args.input_fields.iter().map(|f| f.data_type().clone()).collect();
+        Ok(if collapsible(self.kind, &spec, &types) {
+            GroupPatterns::state_fields(&spec, args.name)
+        } else {
+            GroupRows::state_fields(self.kind, &spec, args.name)
+        })
     }
 
     fn accumulator(&self, args: AccumulatorArgs) -> Result<Box<dyn Accumulator>> {
@@ -127,10 +139,26 @@ impl FitFunction {
     fn groups(&self, args: &AccumulatorArgs) -> Result<FitGroups> {
         let types: Vec<DataType> = args.expr_fields.iter().map(|f| f.data_type().clone()).collect();
         let (spec, _) = spec_at_execution(self.kind, args.exprs, &types)?;
-        Ok(FitGroups {
-            rows: GroupRows::new(self.kind, spec),
-        })
+        let buffer = if collapsible(self.kind, &spec, &types) {
+            Buffer::Patterns(GroupPatterns::new(self.kind, spec))
+        } else {
+            Buffer::Rows(GroupRows::new(self.kind, spec))
+        };
+        Ok(FitGroups { buffer })
     }
+}
+
+/// Poisson fits whose predictors are all factors or integers keep pattern sums instead of rows.
+/// `types` are the argument types after coercion (integers are Int64 then).
+fn collapsible(kind: FitKind, spec: &FitSpec, types: &[DataType]) -> bool {
+    let lead = kind.leading();
+    kind != FitKind::Linear
+        && types.len() >= lead + spec.predictors.len()
+        && spec
+            .predictors
+            .iter()
+            .zip(&types[lead..])
+            .all(|(p, t)| p.factor || t.is_integer())
 }
 
 /// The spec implied by input field types alone (for state fields): predictors are the fields
@@ -159,7 +187,23 @@ fn spec_from_fields(kind: FitKind, fields: &[FieldRef]) -> Result<FitSpec> {
 /// The groups accumulator of a fit function.
 #[derive(Debug)]
 pub struct FitGroups {
-    rows: GroupRows,
+    buffer: Buffer,
+}
+
+/// Rows, or (for factor/integer Poisson designs) pattern sums.
+#[derive(Debug)]
+enum Buffer {
+    Rows(GroupRows),
+    Patterns(GroupPatterns),
+}
+
+impl FitGroups {
+    fn ensure_groups(&mut self, n: usize) {
+        match &mut self.buffer {
+            Buffer::Rows(b) => b.ensure_groups(n),
+            Buffer::Patterns(b) => b.ensure_groups(n),
+        }
+    }
 }
 
 impl GroupsAccumulator for FitGroups {
@@ -170,28 +214,46 @@ impl GroupsAccumulator for FitGroups {
         opt_filter: Option<&BooleanArray>,
         total_num_groups: usize,
     ) -> Result<()> {
-        self.rows.update(values, group_indices, opt_filter, total_num_groups)
+        match &mut self.buffer {
+            Buffer::Rows(b) => b.update(values, group_indices, opt_filter, total_num_groups),
+            Buffer::Patterns(b) => b.update(values, group_indices, opt_filter, total_num_groups),
+        }
     }
 
     fn evaluate(&mut self, emit_to: EmitTo) -> Result<ArrayRef> {
-        let taken = self.rows.take(emit_to);
-        Ok(Arc::new(evaluate_groups(&taken)?))
+        let groups = match &mut self.buffer {
+            Buffer::Rows(b) => GroupSource::Rows(b.take(emit_to)),
+            Buffer::Patterns(b) => GroupSource::Patterns(b.take(emit_to)),
+        };
+        Ok(Arc::new(evaluate_groups(&groups)?))
     }
 
     fn state(&mut self, emit_to: EmitTo) -> Result<Vec<ArrayRef>> {
-        self.rows.take(emit_to).to_state()
+        match &mut self.buffer {
+            Buffer::Rows(b) => b.take(emit_to).to_state(),
+            Buffer::Patterns(b) => b.take(emit_to).to_state(),
+        }
     }
 
     fn merge_batch(&mut self, values: &[ArrayRef], group_indices: &[usize], total_num_groups: usize) -> Result<()> {
-        self.rows.merge(values, group_indices, total_num_groups)
+        match &mut self.buffer {
+            Buffer::Rows(b) => b.merge(values, group_indices, total_num_groups),
+            Buffer::Patterns(b) => b.merge(values, group_indices, total_num_groups),
+        }
     }
 
     fn convert_to_state(&self, values: &[ArrayRef], opt_filter: Option<&BooleanArray>) -> Result<Vec<ArrayRef>> {
-        self.rows.convert_to_state(values, opt_filter)
+        match &self.buffer {
+            Buffer::Rows(b) => b.convert_to_state(values, opt_filter),
+            Buffer::Patterns(b) => b.convert_to_state(values, opt_filter),
+        }
     }
 
     fn size(&self) -> usize {
-        self.rows.size()
+        match &self.buffer {
+            Buffer::Rows(b) => b.size(),
+            Buffer::Patterns(b) => b.size(),
+        }
     }
 }
 
@@ -206,7 +268,7 @@ impl Accumulator for SingleGroup {
     }
 
     fn evaluate(&mut self) -> Result<ScalarValue> {
-        self.0.rows.ensure_groups(1);
+        self.0.ensure_groups(1);
         let array = self.0.evaluate(EmitTo::All)?;
         ScalarValue::try_from_array(&array, 0)
     }
@@ -216,7 +278,7 @@ impl Accumulator for SingleGroup {
     }
 
     fn state(&mut self) -> Result<Vec<ScalarValue>> {
-        self.0.rows.ensure_groups(1);
+        self.0.ensure_groups(1);
         let arrays = self.0.state(EmitTo::All)?;
         arrays.iter().map(|a| ScalarValue::try_from_array(a, 0)).collect()
     }
@@ -227,14 +289,128 @@ impl Accumulator for SingleGroup {
     }
 }
 
-/// Fits every group of `rows` and returns one struct per group.
-pub fn evaluate_groups(rows: &GroupRows) -> Result<datafusion::arrow::array::StructArray> {
+/// The groups to fit, taken out of a buffer.
+pub enum GroupSource {
+    Rows(GroupRows),
+    Patterns(GroupPatterns),
+}
+
+/// Fits every group and returns one struct per group.
+pub fn evaluate_groups(groups: &GroupSource) -> Result<datafusion::arrow::array::StructArray> {
     let mut out = FitColumns::new();
-    let by_group = rows.rows_by_group();
-    for (g, idx) in by_group.iter().enumerate() {
-        fit_group(rows, g, idx, &mut out)?;
+    match groups {
+        GroupSource::Rows(rows) => {
+            let (offsets, mut order) = rows.buckets();
+            for g in 0..rows.num_groups() {
+                let idx = &mut order[offsets[g]..offsets[g + 1]];
+                rows.sort_canonically(idx);
+                fit_group(&GroupData::from_rows(rows, g, idx), &mut out)?;
+            }
+        }
+        GroupSource::Patterns(patterns) => {
+            let (offsets, mut order) = patterns.buckets();
+            for g in 0..patterns.num_groups() {
+                let slots = &mut order[offsets[g]..offsets[g + 1]];
+                patterns.sort_canonically(slots);
+                fit_group(&GroupData::from_patterns(patterns, g, slots), &mut out)?;
+            }
+        }
     }
     Ok(out.finish())
+}
+
+/// What the design rows of one group stand for.
+enum Response {
+    /// One design row per data row.
+    Rows { y: Vec<f64>, exposure: Vec<f64> },
+    /// One design row per covariate pattern, with the sums of its rows.
+    Patterns(Vec<Sums>),
+}
+
+/// One group's data: predictor values per design row, and the response.
+struct GroupData<'a> {
+    kind: FitKind,
+    spec: &'a FitSpec,
+    dictionaries: &'a [Dictionary],
+    skipped: u64,
+    invalid: u64,
+    /// Per predictor: numbers, or dictionary codes.
+    columns: Vec<Column>,
+    response: Response,
+}
+
+impl<'a> GroupData<'a> {
+    fn from_rows(rows: &'a GroupRows, g: usize, idx: &[usize]) -> Self {
+        GroupData {
+            kind: rows.kind,
+            spec: &rows.spec,
+            dictionaries: &rows.dictionaries,
+            skipped: rows.skipped[g],
+            invalid: rows.invalid[g],
+            columns: rows
+                .columns
+                .iter()
+                .map(|c| match c {
+                    Column::Numeric(v) => Column::Numeric(idx.iter().map(|&i| v[i]).collect()),
+                    Column::Factor(codes) => Column::Factor(idx.iter().map(|&i| codes[i]).collect()),
+                })
+                .collect(),
+            response: Response::Rows {
+                y: idx.iter().map(|&i| rows.y[i]).collect(),
+                exposure: idx.iter().map(|&i| rows.exposure[i]).collect(),
+            },
+        }
+    }
+
+    fn from_patterns(p: &'a GroupPatterns, g: usize, slots: &[usize]) -> Self {
+        GroupData {
+            kind: p.kind,
+            spec: &p.spec,
+            dictionaries: &p.dictionaries,
+            skipped: p.skipped[g],
+            invalid: p.invalid[g],
+            columns: p
+                .spec
+                .predictors
+                .iter()
+                .enumerate()
+                .map(|(k, pred)| {
+                    if pred.factor {
+                        Column::Factor(slots.iter().map(|&s| p.value(s, k) as u32).collect())
+                    } else {
+                        Column::Numeric(slots.iter().map(|&s| p.number(s, k)).collect())
+                    }
+                })
+                .collect(),
+            response: Response::Patterns(slots.iter().map(|&s| p.sums[s]).collect()),
+        }
+    }
+
+    /// Number of design rows.
+    fn design_rows(&self) -> usize {
+        match &self.response {
+            Response::Rows { y, .. } => y.len(),
+            Response::Patterns(s) => s.len(),
+        }
+    }
+
+    /// Number of data rows used.
+    fn data_rows(&self) -> usize {
+        match &self.response {
+            Response::Rows { y, .. } => y.len(),
+            Response::Patterns(s) => s.iter().map(Sums::rows).sum(),
+        }
+    }
+
+    fn totals(&self) -> (f64, f64) {
+        match &self.response {
+            Response::Rows { y, exposure } => (y.iter().sum(), exposure.iter().sum()),
+            Response::Patterns(s) => (
+                s.iter().map(Sums::total_count).sum(),
+                s.iter().map(Sums::total_exposure).sum(),
+            ),
+        }
+    }
 }
 
 /// Per-group factor levels: the labels that occur, sorted, with the reference first.
@@ -244,33 +420,36 @@ struct GroupFactor {
     reference: usize,
 }
 
-fn fit_group(rows: &GroupRows, g: usize, idx: &[usize], out: &mut FitColumns) -> Result<()> {
-    let spec = &rows.spec;
+/// The group's levels of a factor and its codes renumbered to them (levels in label order).
+fn group_factor(codes: &[u32], dictionary: &Dictionary) -> (Vec<u32>, Vec<String>) {
+    let mut present: Vec<u32> = codes.to_vec();
+    present.sort_unstable();
+    present.dedup();
+    let mut by_label: Vec<usize> = (0..present.len()).collect();
+    by_label.sort_by(|&a, &b| dictionary.labels[present[a] as usize].cmp(&dictionary.labels[present[b] as usize]));
+    let mut rank = vec![0u32; present.len()];
+    for (r, &k) in by_label.iter().enumerate() {
+        rank[k] = r as u32;
+    }
+    let levels = by_label.iter().map(|&k| dictionary.labels[present[k] as usize].clone()).collect();
+    let local = codes
+        .iter()
+        .map(|c| rank[present.binary_search(c).unwrap_or(0)])
+        .collect();
+    (local, levels)
+}
+
+fn fit_group(data: &GroupData<'_>, out: &mut FitColumns) -> Result<()> {
+    let spec = data.spec;
     let settings = &spec.settings;
-    let n = idx.len();
-    let y: Vec<f64> = idx.iter().map(|&i| rows.y[i]).collect();
-    let exposure: Vec<f64> = idx.iter().map(|&i| rows.exposure[i]).collect();
-    let mut numeric: Vec<Option<Vec<f64>>> = Vec::new();
+    let n = data.design_rows();
     let mut factors: Vec<Option<GroupFactor>> = Vec::new();
     let mut problem: Option<String> = None;
-    for (c, p) in rows.columns.iter().zip(&spec.predictors) {
+    for ((c, p), dictionary) in data.columns.iter().zip(&spec.predictors).zip(data.dictionaries) {
         match c {
-            Column::Numeric(v) => {
-                numeric.push(Some(idx.iter().map(|&i| v[i]).collect()));
-                factors.push(None);
-            }
-            Column::Factor { codes, dictionary } => {
-                let mut present: Vec<u32> = idx.iter().map(|&i| codes[i]).collect();
-                present.sort_unstable();
-                present.dedup();
-                let mut levels: Vec<String> = present.iter().map(|&c| dictionary.labels[c as usize].clone()).collect();
-                levels.sort();
-                let local: std::collections::HashMap<&str, u32> =
-                    levels.iter().enumerate().map(|(k, l)| (l.as_str(), k as u32)).collect();
-                let group_codes = idx
-                    .iter()
-                    .map(|&i| local[dictionary.labels[codes[i] as usize].as_str()])
-                    .collect();
+            Column::Numeric(_) => factors.push(None),
+            Column::Factor(codes) => {
+                let (group_codes, levels) = group_factor(codes, dictionary);
                 let reference = match settings.references.get(&p.name) {
                     None => 0,
                     Some(r) => match levels.iter().position(|l| l == r) {
@@ -287,7 +466,6 @@ fn fit_group(rows: &GroupRows, g: usize, idx: &[usize], out: &mut FitColumns) ->
                         }
                     },
                 };
-                numeric.push(None);
                 factors.push(Some(GroupFactor {
                     codes: group_codes,
                     levels,
@@ -302,14 +480,14 @@ fn fit_group(rows: &GroupRows, g: usize, idx: &[usize], out: &mut FitColumns) ->
         .enumerate()
         .map(|(k, p)| Predictor {
             name: &p.name,
-            values: match (&numeric[k], &factors[k]) {
-                (Some(v), _) => PredictorValues::Numeric(v),
-                (None, Some(f)) => PredictorValues::Factor(FactorColumn {
+            values: match (&data.columns[k], &factors[k]) {
+                (Column::Numeric(v), _) => PredictorValues::Numeric(v),
+                (_, Some(f)) => PredictorValues::Factor(FactorColumn {
                     codes: &f.codes,
                     levels: &f.levels,
                     reference: f.reference,
                 }),
-                _ => unreachable!(),
+                _ => unreachable!("factor columns have group levels"),
             },
         })
         .collect();
@@ -324,26 +502,27 @@ fn fit_group(rows: &GroupRows, g: usize, idx: &[usize], out: &mut FitColumns) ->
             reference: f.as_ref().and_then(|f| f.levels.get(f.reference).cloned()),
         })
         .collect();
-    let family = if rows.kind == FitKind::Linear {
+    let family = if data.kind == FitKind::Linear {
         "gaussian"
     } else {
         "poisson"
     };
-    let counted = rows.kind != FitKind::Linear;
+    let counted = data.kind != FitKind::Linear;
+    let (total_count, total_exposure) = data.totals();
     let base = |status: String, terms| GroupResult {
         status,
         family,
         fit: None,
-        n_used: n as u64,
-        n_skipped: rows.skipped[g],
-        n_invalid: rows.invalid[g],
+        n_used: data.data_rows() as u64,
+        n_skipped: data.skipped,
+        n_invalid: data.invalid,
         terms,
         parts: parts.clone(),
         predictors: infos.clone(),
         se_type: &settings.se,
         level: settings.level,
-        total_count: counted.then(|| y.iter().sum()),
-        total_exposure: (rows.kind == FitKind::PoissonRate).then(|| exposure.iter().sum()),
+        total_count: counted.then_some(total_count),
+        total_exposure: (data.kind == FitKind::PoissonRate).then_some(total_exposure),
     };
     let design_spec = DesignSpec {
         intercept: settings.intercept,
@@ -369,18 +548,24 @@ fn fit_group(rows: &GroupRows, g: usize, idx: &[usize], out: &mut FitColumns) ->
         (None, Ok(d)) => d,
     };
     debug_assert_eq!(design.n_columns(), parts.len());
-    let offset: Option<Vec<f64>> =
-        (rows.kind == FitKind::PoissonRate).then(|| exposure.iter().map(|e| e.ln()).collect());
-    let input = FitInput {
-        y: &y,
-        offset: offset.as_deref(),
-        weights: None,
-    };
-    let fitted = match rows.kind {
-        FitKind::Linear => fit(&Gaussian, &design, input, settings.fit_options()),
-        _ => fit(&Poisson, &design, input, settings.fit_options()),
+    let function = data.kind.sql_name();
+    let fitted = match &data.response {
+        Response::Patterns(sums) => fit_poisson_patterns(&design, sums, settings.fit_options()),
+        Response::Rows { y, exposure } => {
+            let offset: Option<Vec<f64>> =
+                (data.kind == FitKind::PoissonRate).then(|| exposure.iter().map(|e| e.ln()).collect());
+            let input = FitInput {
+                y,
+                offset: offset.as_deref(),
+                weights: None,
+            };
+            match data.kind {
+                FitKind::Linear => fit(&Gaussian, &design, input, settings.fit_options()),
+                _ => fit(&Poisson, &design, input, settings.fit_options()),
+            }
+        }
     }
-    .map_err(|e| DataFusionError::Execution(format!("{}: {e}", rows.kind.sql_name())))?;
+    .map_err(|e| DataFusionError::Execution(format!("{function}: {e}")))?;
     let terms = term_table(&fitted, settings.se_type(), settings.level)
         .map_err(|e| DataFusionError::Execution(e.to_string()))?;
     out.push(GroupResult {

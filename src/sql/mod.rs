@@ -4,6 +4,7 @@
 //! [`register_functions`] registers all of them, and the `ratesheet.*` session options, on a
 //! DataFusion session.
 
+mod batch;
 mod buffer;
 pub mod fit_aggregate;
 pub mod fit_expected;
@@ -11,6 +12,7 @@ pub mod fit_lr_test;
 pub mod fit_term;
 pub mod interaction;
 pub mod options;
+mod patterns;
 pub mod rate_interval;
 pub mod rate_ratio_test;
 pub mod result;

@@ -1,0 +1,358 @@
+//! The performance benchmark: per-group fits against the cost of a plain scan, in one run.
+//!
+//! `cargo bench --bench fits` writes the synthetic data to a temporary folder (removed at the
+//! end), then for every case runs the plain `SUM ... GROUP BY` floor and the fits in this one
+//! process and prints ratios, rows/s, groups/s, CPU use and peak heap. It also runs the
+//! release `ratesheet` binary as a whole process on the largest case.
+//!
+//! Options (after `--`): `--cases S,M,L,skewed,groups100k` (default all), `--keep DIR` (write the
+//! data to DIR and keep it, with `ratesheet_times.json` for `scripts/bench_peers.py`),
+//! `--repeats N` (best of N, default 3).
+//!
+//! Targets are from issue 5; each printed line says `met` or `MISSED`.
+
+use std::alloc::{GlobalAlloc, Layout, System};
+use std::path::{Path, PathBuf};
+use std::sync::Arc;
+use std::sync::atomic::{AtomicUsize, Ordering};
+use std::time::{Duration, Instant};
+
+use datafusion::arrow::array::{ArrayRef, Float64Array, Int64Array, RecordBatch, StringArray};
+use datafusion::arrow::datatypes::{DataType, Field, Schema};
+use datafusion::parquet::arrow::ArrowWriter;
+use datafusion::parquet::basic::Compression;
+use datafusion::parquet::file::properties::WriterProperties;
+use datafusion::prelude::{ParquetReadOptions, SessionContext};
+use rand::rngs::StdRng;
+use rand::{Rng, SeedableRng};
+use rand_distr::{Distribution, Normal, Poisson};
+use ratesheet::cli::session::{SessionSettings, new_session};
+
+/// Counts live heap bytes and their peak, so each query's peak can be read in one process
+/// (the OS figure, VmHWM, covers the whole process and cannot be split per query).
+struct CountingAllocator;
+
+static LIVE: AtomicUsize = AtomicUsize::new(0);
+static PEAK: AtomicUsize = AtomicUsize::new(0);
+
+unsafe impl GlobalAlloc for CountingAllocator {
+    unsafe fn alloc(&self, layout: Layout) -> *mut u8 {
+        let p = unsafe { System.alloc(layout) };
+        if !p.is_null() {
+            let now = LIVE.fetch_add(layout.size(), Ordering::Relaxed) + layout.size();
+            PEAK.fetch_max(now, Ordering::Relaxed);
+        }
+        p
+    }
+    unsafe fn dealloc(&self, p: *mut u8, layout: Layout) {
+        unsafe { System.dealloc(p, layout) };
+        LIVE.fetch_sub(layout.size(), Ordering::Relaxed);
+    }
+    unsafe fn realloc(&self, p: *mut u8, layout: Layout, new_size: usize) -> *mut u8 {
+        let q = unsafe { System.realloc(p, layout, new_size) };
+        if !q.is_null() {
+            if new_size >= layout.size() {
+                let now = LIVE.fetch_add(new_size - layout.size(), Ordering::Relaxed) + new_size - layout.size();
+                PEAK.fetch_max(now, Ordering::Relaxed);
+            } else {
+                LIVE.fetch_sub(layout.size() - new_size, Ordering::Relaxed);
+            }
+        }
+        q
+    }
+}
+
+#[global_allocator]
+static ALLOCATOR: CountingAllocator = CountingAllocator;
+
+/// One benchmark data set.
+#[derive(Clone, Copy)]
+struct Case {
+    name: &'static str,
+    rows: usize,
+    groups: usize,
+    /// Share of the rows that belong to group 0 (0 = balanced).
+    skew: f64,
+}
+
+const CASES: [Case; 5] = [
+    Case { name: "S", rows: 100_000, groups: 50, skew: 0.0 },
+    Case { name: "M", rows: 1_000_000, groups: 200, skew: 0.0 },
+    Case { name: "skewed", rows: 1_000_000, groups: 200, skew: 0.5 },
+    Case { name: "groups100k", rows: 2_000_000, groups: 100_000, skew: 0.0 },
+    Case { name: "L", rows: 10_000_000, groups: 1_000, skew: 0.0 },
+];
+
+const SEED: u64 = 20261202;
+const LEVELS: [&str; 4] = ["alpha", "beta", "gamma", "delta"];
+
+/// Writes one case as Parquet: region, exposure, count, x1..x3, flag (0/1), kind (4 levels).
+/// True model: log rate = a_region + 0.3 x1 - 0.2 x2 + 0.1 x3 + 0.25 flag + kind effect.
+fn write_case(case: &Case, path: &Path) -> datafusion::error::Result<()> {
+    let schema = Arc::new(Schema::new(vec![
+        Field::new("region", DataType::Utf8, false),
+        Field::new("exposure", DataType::Float64, false),
+        Field::new("count", DataType::Int64, false),
+        Field::new("x1", DataType::Float64, false),
+        Field::new("x2", DataType::Float64, false),
+        Field::new("x3", DataType::Float64, false),
+        Field::new("flag", DataType::Int64, false),
+        Field::new("kind", DataType::Utf8, false),
+    ]));
+    let mut rng = StdRng::seed_from_u64(SEED ^ case.rows as u64 ^ ((case.groups as u64) << 32));
+    let normal = Normal::new(0.0, 1.0).expect("valid normal");
+    let region_effect: Vec<f64> = (0..case.groups).map(|_| rng.random_range(-1.0..0.5)).collect();
+    let names: Vec<String> = (0..case.groups).map(|g| format!("r{g:06}")).collect();
+    let kind_effect = [0.0, 0.2, -0.3, 0.4];
+    let props = WriterProperties::builder().set_compression(Compression::SNAPPY).build();
+    let file = std::fs::File::create(path)?;
+    let mut writer = ArrowWriter::try_new(file, schema.clone(), Some(props))?;
+    let chunk = 131_072;
+    let mut done = 0;
+    while done < case.rows {
+        let n = chunk.min(case.rows - done);
+        let (mut region, mut exposure, mut count) = (Vec::new(), Vec::new(), Vec::new());
+        let (mut x1, mut x2, mut x3, mut flag, mut kind) = (Vec::new(), Vec::new(), Vec::new(), Vec::new(), Vec::new());
+        for _ in 0..n {
+            let g = if case.skew > 0.0 && rng.random_bool(case.skew) {
+                0
+            } else {
+                rng.random_range(0..case.groups)
+            };
+            let e: f64 = rng.random_range(0.5..5.0);
+            let (a, b, c): (f64, f64, f64) = (normal.sample(&mut rng), rng.random(), normal.sample(&mut rng));
+            let f = rng.random_bool(0.4) as i64;
+            let k = rng.random_range(0..4);
+            let eta = region_effect[g] + 0.3 * a - 0.2 * b + 0.1 * c + 0.25 * f as f64 + kind_effect[k];
+            let mu = e * eta.exp();
+            let y = Poisson::new(mu).map(|p| p.sample(&mut rng)).unwrap_or(0.0);
+            region.push(names[g].as_str());
+            exposure.push(e);
+            count.push(y as i64);
+            x1.push(a);
+            x2.push(b);
+            x3.push(c);
+            flag.push(f);
+            kind.push(LEVELS[k]);
+        }
+        let columns: Vec<ArrayRef> = vec![
+            Arc::new(StringArray::from(region)),
+            Arc::new(Float64Array::from(exposure)),
+            Arc::new(Int64Array::from(count)),
+            Arc::new(Float64Array::from(x1)),
+            Arc::new(Float64Array::from(x2)),
+            Arc::new(Float64Array::from(x3)),
+            Arc::new(Int64Array::from(flag)),
+            Arc::new(StringArray::from(kind)),
+        ];
+        writer.write(&RecordBatch::try_new(schema.clone(), columns)?)?;
+        done += n;
+    }
+    writer.close()?;
+    Ok(())
+}
+
+const FLOOR_SQL: &str = "SELECT region, SUM(count) AS events, SUM(exposure) AS exposure FROM t GROUP BY region";
+const FIT_SQL: &str = "SELECT region, poisson_fit(count, exposure, x1, x2, x3, flag, kind) AS fit FROM t GROUP BY region";
+/// Factor and integer predictors only: the fit runs on collapsed covariate patterns.
+const COLLAPSED_SQL: &str = "SELECT region, poisson_fit(count, exposure, flag, kind) AS fit FROM t GROUP BY region";
+
+/// A measured query: best wall time of the repeats, CPU seconds per wall second of that run,
+/// and peak heap above the level before it started.
+struct Measure {
+    wall: Duration,
+    cpu_per_wall: f64,
+    peak_heap: usize,
+    result_rows: usize,
+}
+
+/// User + system CPU time of this process, from /proc/self/stat (clock ticks of 10 ms).
+fn cpu_time() -> Duration {
+    let stat = std::fs::read_to_string("/proc/self/stat").unwrap_or_default();
+    let after = stat.rsplit(')').next().unwrap_or("");
+    let fields: Vec<&str> = after.split_whitespace().collect();
+    let ticks = |i: usize| fields.get(i).and_then(|v| v.parse::<u64>().ok()).unwrap_or(0);
+    // Fields after the command: state is index 0, utime 11, stime 12.
+    Duration::from_millis((ticks(11) + ticks(12)) * 10)
+}
+
+async fn measure(ctx: &SessionContext, sql: &str, repeats: usize) -> datafusion::error::Result<Measure> {
+    let mut best: Option<Measure> = None;
+    for _ in 0..repeats {
+        let base = LIVE.load(Ordering::Relaxed);
+        PEAK.store(base, Ordering::Relaxed);
+        let (t0, c0) = (Instant::now(), cpu_time());
+        let batches = ctx.sql(sql).await?.collect().await?;
+        let wall = t0.elapsed();
+        let cpu = cpu_time() - c0;
+        let m = Measure {
+            wall,
+            cpu_per_wall: cpu.as_secs_f64() / wall.as_secs_f64().max(1e-9),
+            peak_heap: PEAK.load(Ordering::Relaxed).saturating_sub(base),
+            result_rows: batches.iter().map(|b| b.num_rows()).sum(),
+        };
+        drop(batches);
+        if best.as_ref().is_none_or(|b| m.wall < b.wall) {
+            best = Some(m);
+        }
+    }
+    Ok(best.expect("at least one repeat"))
+}
+
+/// Arrow in-memory bytes of the model columns of table `t`.
+async fn model_column_bytes(ctx: &SessionContext) -> datafusion::error::Result<usize> {
+    let batches = ctx
+        .sql("SELECT region, exposure, count, x1, x2, x3, flag, kind FROM t")
+        .await?
+        .collect()
+        .await?;
+    Ok(batches.iter().map(|b| b.get_array_memory_size()).sum())
+}
+
+fn mib(bytes: usize) -> String {
+    format!("{:.0} MiB", bytes as f64 / (1 << 20) as f64)
+}
+
+fn verdict(ok: bool) -> &'static str {
+    if ok { "met" } else { "MISSED" }
+}
+
+struct Options {
+    cases: Vec<Case>,
+    keep: Option<PathBuf>,
+    repeats: usize,
+}
+
+fn options() -> Options {
+    let mut opts = Options {
+        cases: CASES.to_vec(),
+        keep: None,
+        repeats: 3,
+    };
+    let args: Vec<String> = std::env::args().skip(1).collect();
+    let mut i = 0;
+    while i < args.len() {
+        match args[i].as_str() {
+            "--cases" => {
+                let wanted: Vec<String> = args.get(i + 1).map_or("", |s| s.as_str()).split(',').map(str::to_string).collect();
+                opts.cases = CASES.iter().filter(|c| wanted.iter().any(|w| w == c.name)).copied().collect();
+                i += 1;
+            }
+            "--keep" => {
+                opts.keep = args.get(i + 1).map(PathBuf::from);
+                i += 1;
+            }
+            "--repeats" => {
+                opts.repeats = args.get(i + 1).and_then(|s| s.parse().ok()).unwrap_or(3).max(1);
+                i += 1;
+            }
+            // cargo bench passes --bench; anything else is ignored.
+            _ => {}
+        }
+        i += 1;
+    }
+    opts
+}
+
+/// Runs the release binary as a whole process on `file`; returns wall time and peak RSS.
+fn whole_process(file: &Path) -> Option<(Duration, usize)> {
+    let exe = env!("CARGO_BIN_EXE_ratesheet");
+    let sql = FIT_SQL.replace("FROM t", &format!("FROM {}", table_stem(file)));
+    let t0 = Instant::now();
+    let child = std::process::Command::new(exe)
+        .arg(file)
+        .arg("-e")
+        .arg(sql)
+        .args(["--format", "csv"])
+        .stdout(std::process::Stdio::null())
+        .spawn()
+        .ok()?;
+    let pid = child.id() as libc::pid_t;
+    let mut status = 0;
+    let mut usage: libc::rusage = unsafe { std::mem::zeroed() };
+    // wait4 gives this child's own peak RSS (std's wait does not report it).
+    let r = unsafe { libc::wait4(pid, &mut status, 0, &mut usage) };
+    let wall = t0.elapsed();
+    (r == pid && status == 0).then(|| (wall, usage.ru_maxrss as usize * 1024))
+}
+
+fn table_stem(file: &Path) -> String {
+    ratesheet::cli::session::table_name_for(&file.to_string_lossy())
+}
+
+#[tokio::main]
+async fn main() -> datafusion::error::Result<()> {
+    let opts = options();
+    let dir = match &opts.keep {
+        Some(d) => {
+            std::fs::create_dir_all(d)?;
+            d.clone()
+        }
+        None => std::env::temp_dir().join(format!("ratesheet-bench-{}", std::process::id())),
+    };
+    std::fs::create_dir_all(&dir)?;
+    println!("ratesheet benchmark; data in {} ({} cores)", dir.display(), std::thread::available_parallelism().map_or(1, |n| n.get()));
+    let mut times = serde_json::Map::new();
+    for case in &opts.cases {
+        let path = dir.join(format!("bench_{}.parquet", case.name));
+        if !path.exists() {
+            let t0 = Instant::now();
+            write_case(case, &path)?;
+            println!("wrote {} ({} rows, {} groups) in {:.1} s", path.display(), case.rows, case.groups, t0.elapsed().as_secs_f64());
+        }
+        let ctx = new_session(&SessionSettings::default())?;
+        ctx.register_parquet("t", path.to_string_lossy().as_ref(), ParquetReadOptions::default()).await?;
+        let repeats = if case.rows >= 10_000_000 { opts.repeats.min(2) } else { opts.repeats };
+        let floor = measure(&ctx, FLOOR_SQL, repeats).await?;
+        let fit = measure(&ctx, FIT_SQL, repeats).await?;
+        let collapsed = measure(&ctx, COLLAPSED_SQL, repeats).await?;
+        let model_bytes = model_column_bytes(&ctx).await?;
+        let secs = |m: &Measure| m.wall.as_secs_f64();
+        println!("\ncase {}: {} rows, {} groups{}", case.name, case.rows, case.groups, if case.skew > 0.0 { ", group 0 holds half the rows" } else { "" });
+        for (label, m) in [("SUM floor", &floor), ("poisson_fit, 8 parameters", &fit), ("poisson_fit, factors only", &collapsed)] {
+            println!(
+                "  {label:<28} {:>8.3} s  {:>6.2}x floor  {:>7.2} M rows/s  {:>9.0} groups/s  cpu {:.2} cores  peak heap {}",
+                secs(m),
+                secs(m) / secs(&floor),
+                case.rows as f64 / secs(m) / 1e6,
+                m.result_rows as f64 / secs(m),
+                m.cpu_per_wall,
+                mib(m.peak_heap)
+            );
+        }
+        println!("  model columns in memory: {}; fit peak heap / model bytes = {:.2}", mib(model_bytes), fit.peak_heap as f64 / model_bytes as f64);
+        times.insert(
+            case.name.to_string(),
+            serde_json::json!({"rows": case.rows, "groups": case.groups, "floor_s": secs(&floor), "fit_s": secs(&fit), "collapsed_s": secs(&collapsed)}),
+        );
+        let ratio = secs(&fit) / secs(&floor);
+        let cratio = secs(&collapsed) / secs(&floor);
+        match case.name {
+            "L" => println!("  target: 8-parameter fit <= 3x floor: {ratio:.2}x, {}", verdict(ratio <= 3.0)),
+            "groups100k" => println!("  target: 100,000 groups under 2 s: {:.2} s, {}", secs(&fit), verdict(secs(&fit) < 2.0)),
+            _ => {}
+        }
+        if case.name == "L" || case.name == "M" {
+            println!("  target: factors-only fit <= 1.3x floor: {cratio:.2}x, {}", verdict(cratio <= 1.3));
+            println!("  target: both cores busy while fitting: {:.2} cores, {}", fit.cpu_per_wall, verdict(fit.cpu_per_wall >= 1.6));
+        }
+        if case.name == "L" {
+            if let Some((wall, rss)) = whole_process(&path) {
+                println!("  whole process (release binary, fit to CSV): {:.2} s, peak RSS {}; peak RSS / model bytes = {:.2}, target <= 2: {}",
+                    wall.as_secs_f64(), mib(rss), rss as f64 / model_bytes as f64, verdict(rss as f64 <= 2.0 * model_bytes as f64));
+                times.insert("L_whole_process".into(), serde_json::json!({"wall_s": wall.as_secs_f64(), "peak_rss_bytes": rss}));
+            }
+        }
+    }
+    if let (Some(m), Some(s)) = (times.get("M"), times.get("skewed")) {
+        let r = s["fit_s"].as_f64().unwrap_or(f64::NAN) / m["fit_s"].as_f64().unwrap_or(f64::NAN);
+        println!("\ntarget: skewed fit <= 1.5x balanced fit: {r:.2}x, {}", verdict(r <= 1.5));
+    }
+    if opts.keep.is_some() {
+        std::fs::write(dir.join("ratesheet_times.json"), serde_json::to_string_pretty(&times).unwrap_or_default())?;
+        println!("kept the data and ratesheet_times.json in {}", dir.display());
+    } else {
+        std::fs::remove_dir_all(&dir)?;
+    }
+    Ok(())
+}

@@ -1,0 +1,153 @@
+//! Running a statement with a progress line on stderr.
+//!
+//! DataFusion has no progress callback, but its file scans count the rows they have produced in
+//! their live `output_rows` metric. While a query runs, a ticker reads that metric from every
+//! scan of the physical plan and shows it against the total the scans know before reading
+//! (Parquet footers give exact row counts; CSV scans do not, so only rows read are shown).
+//! The line appears after [`QUIET_PERIOD`] and is erased before the result prints.
+
+use std::io::Write;
+use std::sync::Arc;
+use std::time::{Duration, Instant};
+
+use datafusion::arrow::array::RecordBatch;
+use datafusion::common::stats::Precision;
+use datafusion::datasource::physical_plan::FileScanConfig;
+use datafusion::datasource::source::DataSourceExec;
+use datafusion::error::{DataFusionError, Result};
+use datafusion::physical_plan::{ExecutionPlan, collect};
+use datafusion::prelude::SessionContext;
+
+/// Queries quicker than this show no progress line.
+pub const QUIET_PERIOD: Duration = Duration::from_secs(1);
+const TICK: Duration = Duration::from_millis(200);
+
+/// The leaf nodes (file scans and other sources) of a plan.
+fn scans(plan: &Arc<dyn ExecutionPlan>) -> Vec<Arc<dyn ExecutionPlan>> {
+    if plan.children().is_empty() {
+        return vec![plan.clone()];
+    }
+    plan.children().into_iter().flat_map(scans).collect()
+}
+
+/// Rows the scans will read, when every scan knows it (Parquet metadata).
+fn total_rows(scans: &[Arc<dyn ExecutionPlan>]) -> Option<usize> {
+    let mut total = 0;
+    for s in scans {
+        // The plan-level statistics of a scan are its files' metadata totals; this one-node
+        // question needs none of the newer statistics framework.
+        #[allow(deprecated)]
+        let stats = s.partition_statistics(None);
+        match stats.ok()?.num_rows {
+            Precision::Exact(n) | Precision::Inexact(n) => total += n,
+            Precision::Absent => return None,
+        }
+    }
+    Some(total)
+}
+
+fn rows_read(scans: &[Arc<dyn ExecutionPlan>]) -> usize {
+    scans.iter().filter_map(|s| s.metrics()?.output_rows()).sum()
+}
+
+/// "12.3k", "4.56M": row counts in a short form.
+fn short_count(n: usize) -> String {
+    let v = n as f64;
+    match n {
+        0..1_000 => n.to_string(),
+        1_000..1_000_000 => format!("{:.1}k", v / 1e3),
+        1_000_000..1_000_000_000 => format!("{:.2}M", v / 1e6),
+        _ => format!("{:.2}G", v / 1e9),
+    }
+}
+
+/// The progress text for `read` of `total` rows after `elapsed`.
+pub fn progress_text(read: usize, total: Option<usize>, elapsed: Duration) -> String {
+    let secs = elapsed.as_secs_f64();
+    match total {
+        Some(t) if t > 0 && read >= t => format!("all {} rows read, computing… {secs:.1} s", short_count(t)),
+        Some(t) if t > 0 => format!(
+            "reading {} of {} rows ({:.0}%)… {secs:.1} s",
+            short_count(read),
+            short_count(t),
+            100.0 * read as f64 / t as f64
+        ),
+        _ => format!("{} rows read… {secs:.1} s", short_count(read)),
+    }
+}
+
+/// Plans and runs `sql`, collecting its result; with `show`, a progress line is kept on stderr
+/// while it runs longer than [`QUIET_PERIOD`].
+pub async fn collect_with_progress(ctx: &SessionContext, sql: &str, show: bool) -> Result<Vec<RecordBatch>> {
+    let df = ctx.sql(sql).await?;
+    let plan = df.create_physical_plan().await?;
+    let leaves = scans(&plan);
+    let run = collect(plan, ctx.task_ctx());
+    if !show {
+        return run.await.map_err(|e| naming_files(e, &leaves));
+    }
+    let total = total_rows(&leaves);
+    let start = Instant::now();
+    tokio::pin!(run);
+    let mut line = ProgressLine { shown: false };
+    let mut ticker = tokio::time::interval_at(tokio::time::Instant::now() + QUIET_PERIOD, TICK);
+    let result = loop {
+        tokio::select! {
+            r = &mut run => break r,
+            _ = ticker.tick() => {
+                line.show(&progress_text(rows_read(&leaves), total, start.elapsed()));
+            }
+        }
+    };
+    drop(line);
+    result.map_err(|e| naming_files(e, &leaves))
+}
+
+/// Adds the files the query was reading to an execution error (DataFusion's parse errors name
+/// the line and column, not the file).
+fn naming_files(e: DataFusionError, leaves: &[Arc<dyn ExecutionPlan>]) -> DataFusionError {
+    let mut files = Vec::new();
+    for leaf in leaves {
+        let Some(source) = leaf.downcast_ref::<DataSourceExec>() else { continue };
+        let Some(config) = source.data_source().downcast_ref::<FileScanConfig>() else { continue };
+        for group in &config.file_groups {
+            files.extend(group.files().iter().map(|f| format!("/{}", f.object_meta.location)));
+        }
+    }
+    files.sort();
+    files.dedup();
+    let reading = match files.len() {
+        0 => return e,
+        1..=3 => files.join(", "),
+        n => format!("{}, {} and {} more files", files[0], files[1], n - 2),
+    };
+    match e {
+        // Memory errors keep their kind (callers tell them apart).
+        DataFusionError::ResourcesExhausted(_) => e,
+        other => DataFusionError::Execution(format!("{} (while reading {reading})", other.strip_backtrace())),
+    }
+}
+
+/// The line on stderr; erased when dropped, also when the query is cancelled mid-way.
+struct ProgressLine {
+    shown: bool,
+}
+
+impl ProgressLine {
+    fn show(&mut self, text: &str) {
+        let mut err = std::io::stderr().lock();
+        let _ = write!(err, "\r\x1b[2K{text}");
+        let _ = err.flush();
+        self.shown = true;
+    }
+}
+
+impl Drop for ProgressLine {
+    fn drop(&mut self) {
+        if self.shown {
+            let mut err = std::io::stderr().lock();
+            let _ = write!(err, "\r\x1b[2K");
+            let _ = err.flush();
+        }
+    }
+}
