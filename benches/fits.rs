@@ -76,11 +76,36 @@ struct Case {
 }
 
 const CASES: [Case; 5] = [
-    Case { name: "S", rows: 100_000, groups: 50, skew: 0.0 },
-    Case { name: "M", rows: 1_000_000, groups: 200, skew: 0.0 },
-    Case { name: "skewed", rows: 1_000_000, groups: 200, skew: 0.5 },
-    Case { name: "groups100k", rows: 2_000_000, groups: 100_000, skew: 0.0 },
-    Case { name: "L", rows: 10_000_000, groups: 1_000, skew: 0.0 },
+    Case {
+        name: "S",
+        rows: 100_000,
+        groups: 50,
+        skew: 0.0,
+    },
+    Case {
+        name: "M",
+        rows: 1_000_000,
+        groups: 200,
+        skew: 0.0,
+    },
+    Case {
+        name: "skewed",
+        rows: 1_000_000,
+        groups: 200,
+        skew: 0.5,
+    },
+    Case {
+        name: "groups100k",
+        rows: 2_000_000,
+        groups: 100_000,
+        skew: 0.0,
+    },
+    Case {
+        name: "L",
+        rows: 10_000_000,
+        groups: 1_000,
+        skew: 0.0,
+    },
 ];
 
 const SEED: u64 = 20261202;
@@ -153,7 +178,8 @@ fn write_case(case: &Case, path: &Path) -> datafusion::error::Result<()> {
 }
 
 const FLOOR_SQL: &str = "SELECT region, SUM(count) AS events, SUM(exposure) AS exposure FROM t GROUP BY region";
-const FIT_SQL: &str = "SELECT region, poisson_fit(count, exposure, x1, x2, x3, flag, kind) AS fit FROM t GROUP BY region";
+const FIT_SQL: &str =
+    "SELECT region, poisson_fit(count, exposure, x1, x2, x3, flag, kind) AS fit FROM t GROUP BY region";
 /// Factor and integer predictors only: the fit runs on collapsed covariate patterns.
 const COLLAPSED_SQL: &str = "SELECT region, poisson_fit(count, exposure, flag, kind) AS fit FROM t GROUP BY region";
 
@@ -234,8 +260,17 @@ fn options() -> Options {
     while i < args.len() {
         match args[i].as_str() {
             "--cases" => {
-                let wanted: Vec<String> = args.get(i + 1).map_or("", |s| s.as_str()).split(',').map(str::to_string).collect();
-                opts.cases = CASES.iter().filter(|c| wanted.iter().any(|w| w == c.name)).copied().collect();
+                let wanted: Vec<String> = args
+                    .get(i + 1)
+                    .map_or("", |s| s.as_str())
+                    .split(',')
+                    .map(str::to_string)
+                    .collect();
+                opts.cases = CASES
+                    .iter()
+                    .filter(|c| wanted.iter().any(|w| w == c.name))
+                    .copied()
+                    .collect();
                 i += 1;
             }
             "--keep" => {
@@ -291,25 +326,54 @@ async fn main() -> datafusion::error::Result<()> {
         None => std::env::temp_dir().join(format!("ratesheet-bench-{}", std::process::id())),
     };
     std::fs::create_dir_all(&dir)?;
-    println!("ratesheet benchmark; data in {} ({} cores)", dir.display(), std::thread::available_parallelism().map_or(1, |n| n.get()));
+    println!(
+        "ratesheet benchmark; data in {} ({} cores)",
+        dir.display(),
+        std::thread::available_parallelism().map_or(1, |n| n.get())
+    );
     let mut times = serde_json::Map::new();
     for case in &opts.cases {
         let path = dir.join(format!("bench_{}.parquet", case.name));
         if !path.exists() {
             let t0 = Instant::now();
             write_case(case, &path)?;
-            println!("wrote {} ({} rows, {} groups) in {:.1} s", path.display(), case.rows, case.groups, t0.elapsed().as_secs_f64());
+            println!(
+                "wrote {} ({} rows, {} groups) in {:.1} s",
+                path.display(),
+                case.rows,
+                case.groups,
+                t0.elapsed().as_secs_f64()
+            );
         }
         let ctx = new_session(&SessionSettings::default())?;
-        ctx.register_parquet("t", path.to_string_lossy().as_ref(), ParquetReadOptions::default()).await?;
-        let repeats = if case.rows >= 10_000_000 { opts.repeats.min(2) } else { opts.repeats };
+        ctx.register_parquet("t", path.to_string_lossy().as_ref(), ParquetReadOptions::default())
+            .await?;
+        let repeats = if case.rows >= 10_000_000 {
+            opts.repeats.min(2)
+        } else {
+            opts.repeats
+        };
         let floor = measure(&ctx, FLOOR_SQL, repeats).await?;
         let fit = measure(&ctx, FIT_SQL, repeats).await?;
         let collapsed = measure(&ctx, COLLAPSED_SQL, repeats).await?;
         let model_bytes = model_column_bytes(&ctx).await?;
         let secs = |m: &Measure| m.wall.as_secs_f64();
-        println!("\ncase {}: {} rows, {} groups{}", case.name, case.rows, case.groups, if case.skew > 0.0 { ", group 0 holds half the rows" } else { "" });
-        for (label, m) in [("SUM floor", &floor), ("poisson_fit, 8 parameters", &fit), ("poisson_fit, factors only", &collapsed)] {
+        println!(
+            "\ncase {}: {} rows, {} groups{}",
+            case.name,
+            case.rows,
+            case.groups,
+            if case.skew > 0.0 {
+                ", group 0 holds half the rows"
+            } else {
+                ""
+            }
+        );
+        for (label, m) in [
+            ("SUM floor", &floor),
+            ("poisson_fit, 8 parameters", &fit),
+            ("poisson_fit, factors only", &collapsed),
+        ] {
             println!(
                 "  {label:<28} {:>8.3} s  {:>6.2}x floor  {:>7.2} M rows/s  {:>9.0} groups/s  cpu {:.2} cores  peak heap {}",
                 secs(m),
@@ -320,7 +384,11 @@ async fn main() -> datafusion::error::Result<()> {
                 mib(m.peak_heap)
             );
         }
-        println!("  model columns in memory: {}; fit peak heap / model bytes = {:.2}", mib(model_bytes), fit.peak_heap as f64 / model_bytes as f64);
+        println!(
+            "  model columns in memory: {}; fit peak heap / model bytes = {:.2}",
+            mib(model_bytes),
+            fit.peak_heap as f64 / model_bytes as f64
+        );
         times.insert(
             case.name.to_string(),
             serde_json::json!({"rows": case.rows, "groups": case.groups, "floor_s": secs(&floor), "fit_s": secs(&fit), "collapsed_s": secs(&collapsed)}),
@@ -328,28 +396,56 @@ async fn main() -> datafusion::error::Result<()> {
         let ratio = secs(&fit) / secs(&floor);
         let cratio = secs(&collapsed) / secs(&floor);
         match case.name {
-            "L" => println!("  target: 8-parameter fit <= 3x floor: {ratio:.2}x, {}", verdict(ratio <= 3.0)),
-            "groups100k" => println!("  target: 100,000 groups under 2 s: {:.2} s, {}", secs(&fit), verdict(secs(&fit) < 2.0)),
+            "L" => println!(
+                "  target: 8-parameter fit <= 3x floor: {ratio:.2}x, {}",
+                verdict(ratio <= 3.0)
+            ),
+            "groups100k" => println!(
+                "  target: 100,000 groups under 2 s: {:.2} s, {}",
+                secs(&fit),
+                verdict(secs(&fit) < 2.0)
+            ),
             _ => {}
         }
         if case.name == "L" || case.name == "M" {
-            println!("  target: factors-only fit <= 1.3x floor: {cratio:.2}x, {}", verdict(cratio <= 1.3));
-            println!("  target: both cores busy while fitting: {:.2} cores, {}", fit.cpu_per_wall, verdict(fit.cpu_per_wall >= 1.6));
+            println!(
+                "  target: factors-only fit <= 1.3x floor: {cratio:.2}x, {}",
+                verdict(cratio <= 1.3)
+            );
+            println!(
+                "  target: both cores busy while fitting: {:.2} cores, {}",
+                fit.cpu_per_wall,
+                verdict(fit.cpu_per_wall >= 1.6)
+            );
         }
         if case.name == "L" {
             if let Some((wall, rss)) = whole_process(&path) {
-                println!("  whole process (release binary, fit to CSV): {:.2} s, peak RSS {}; peak RSS / model bytes = {:.2}, target <= 2: {}",
-                    wall.as_secs_f64(), mib(rss), rss as f64 / model_bytes as f64, verdict(rss as f64 <= 2.0 * model_bytes as f64));
-                times.insert("L_whole_process".into(), serde_json::json!({"wall_s": wall.as_secs_f64(), "peak_rss_bytes": rss}));
+                println!(
+                    "  whole process (release binary, fit to CSV): {:.2} s, peak RSS {}; peak RSS / model bytes = {:.2}, target <= 2: {}",
+                    wall.as_secs_f64(),
+                    mib(rss),
+                    rss as f64 / model_bytes as f64,
+                    verdict(rss as f64 <= 2.0 * model_bytes as f64)
+                );
+                times.insert(
+                    "L_whole_process".into(),
+                    serde_json::json!({"wall_s": wall.as_secs_f64(), "peak_rss_bytes": rss}),
+                );
             }
         }
     }
     if let (Some(m), Some(s)) = (times.get("M"), times.get("skewed")) {
         let r = s["fit_s"].as_f64().unwrap_or(f64::NAN) / m["fit_s"].as_f64().unwrap_or(f64::NAN);
-        println!("\ntarget: skewed fit <= 1.5x balanced fit: {r:.2}x, {}", verdict(r <= 1.5));
+        println!(
+            "\ntarget: skewed fit <= 1.5x balanced fit: {r:.2}x, {}",
+            verdict(r <= 1.5)
+        );
     }
     if opts.keep.is_some() {
-        std::fs::write(dir.join("ratesheet_times.json"), serde_json::to_string_pretty(&times).unwrap_or_default())?;
+        std::fs::write(
+            dir.join("ratesheet_times.json"),
+            serde_json::to_string_pretty(&times).unwrap_or_default(),
+        )?;
         println!("kept the data and ratesheet_times.json in {}", dir.display());
     } else {
         std::fs::remove_dir_all(&dir)?;

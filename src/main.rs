@@ -4,9 +4,9 @@
 use std::process::ExitCode;
 
 use clap::Parser;
+use ratesheet::cli::progress::collect_with_progress;
 use ratesheet::cli::render::{Format, Style, render};
 use ratesheet::cli::session::{SessionSettings, new_session, open_table};
-use ratesheet::cli::progress::collect_with_progress;
 use ratesheet::cli::shell::{Shell, save_batches};
 use std::io::IsTerminal;
 

@@ -108,8 +108,12 @@ pub async fn collect_with_progress(ctx: &SessionContext, sql: &str, show: bool) 
 fn naming_files(e: DataFusionError, leaves: &[Arc<dyn ExecutionPlan>]) -> DataFusionError {
     let mut files = Vec::new();
     for leaf in leaves {
-        let Some(source) = leaf.downcast_ref::<DataSourceExec>() else { continue };
-        let Some(config) = source.data_source().downcast_ref::<FileScanConfig>() else { continue };
+        let Some(source) = leaf.downcast_ref::<DataSourceExec>() else {
+            continue;
+        };
+        let Some(config) = source.data_source().downcast_ref::<FileScanConfig>() else {
+            continue;
+        };
         for group in &config.file_groups {
             files.extend(group.files().iter().map(|f| format!("/{}", f.object_meta.location)));
         }

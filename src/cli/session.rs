@@ -158,7 +158,10 @@ pub async fn open_table(ctx: &SessionContext, path: &str, name: Option<&str>) ->
     let files = files_of(path, format);
     for f in &files {
         if std::fs::metadata(f).is_ok_and(|m| m.len() == 0) {
-            return Err(DataFusionError::Plan(format!("{}: the file is empty (0 bytes)", f.display())));
+            return Err(DataFusionError::Plan(format!(
+                "{}: the file is empty (0 bytes)",
+                f.display()
+            )));
         }
     }
     let delimiter = if format == "csv" { csv_layout(&files)? } else { b',' };
@@ -212,7 +215,11 @@ fn files_of(path: &str, format: &str) -> Vec<std::path::PathBuf> {
     if p.is_dir() {
         let mut files: Vec<_> = walk(p)
             .into_iter()
-            .filter(|f| f.extension().and_then(|e| e.to_str()).is_some_and(|e| e.eq_ignore_ascii_case(format)))
+            .filter(|f| {
+                f.extension()
+                    .and_then(|e| e.to_str())
+                    .is_some_and(|e| e.eq_ignore_ascii_case(format))
+            })
             .collect();
         files.sort();
         files
@@ -298,7 +305,10 @@ fn same_parquet_schemas(files: &[std::path::PathBuf]) -> Result<()> {
             None => first = Some((columns, f)),
             Some((c, g)) if *c != columns => {
                 let describe = |cols: &[(String, String)]| {
-                    cols.iter().map(|(n, t)| format!("{n} {t}")).collect::<Vec<_>>().join(", ")
+                    cols.iter()
+                        .map(|(n, t)| format!("{n} {t}"))
+                        .collect::<Vec<_>>()
+                        .join(", ")
                 };
                 return Err(DataFusionError::Plan(format!(
                     "{} ({}) and {name} ({}) have different columns; a folder opens as one table only when its files share one schema",

@@ -45,7 +45,8 @@ fn cell_name(row: u32, col: u32) -> String {
 
 /// Reads every sheet of the workbook at `path`.
 pub fn read_workbook(path: &str) -> Result<Vec<Sheet>> {
-    let mut book: Xlsx<_> = open_workbook(Path::new(path)).map_err(|e| plan_error(path, format!("not a readable .xlsx workbook: {e}")))?;
+    let mut book: Xlsx<_> =
+        open_workbook(Path::new(path)).map_err(|e| plan_error(path, format!("not a readable .xlsx workbook: {e}")))?;
     let names = book.sheet_names();
     let mut sheets = Vec::new();
     for name in names {
@@ -119,18 +120,25 @@ fn sheet_batch(path: &str, sheet: &str, range: &Range<Data>) -> Result<RecordBat
     for (c, cell) in header.iter().enumerate() {
         let name = cell.to_string().trim().to_string();
         let letter = cell_name(row0, col0 + c as u32);
-        let column_empty = data.iter().all(|row| row.get(c).is_none_or(|d| matches!(d, Data::Empty)));
+        let column_empty = data
+            .iter()
+            .all(|row| row.get(c).is_none_or(|d| matches!(d, Data::Empty)));
         if name.is_empty() && column_empty {
             continue;
         }
         if name.is_empty() {
             return Err(plan_error(
                 path,
-                format!("sheet {sheet}: the header cell {letter} is blank but its column holds data; give every column a name"),
+                format!(
+                    "sheet {sheet}: the header cell {letter} is blank but its column holds data; give every column a name"
+                ),
             ));
         }
         if names.contains(&name) {
-            return Err(plan_error(path, format!("sheet {sheet}: the column name {name} appears twice (again at {letter})")));
+            return Err(plan_error(
+                path,
+                format!("sheet {sheet}: the column name {name} appears twice (again at {letter})"),
+            ));
         }
         names.push(name);
         kept.push(c);
@@ -140,7 +148,10 @@ fn sheet_batch(path: &str, sheet: &str, range: &Range<Data>) -> Result<RecordBat
             if let Data::Error(e) = cell {
                 return Err(plan_error(
                     path,
-                    format!("sheet {sheet}: cell {} holds the error {e}; fix or clear it", cell_name(row0 + 1 + r as u32, col0 + c as u32)),
+                    format!(
+                        "sheet {sheet}: cell {} holds the error {e}; fix or clear it",
+                        cell_name(row0 + 1 + r as u32, col0 + c as u32)
+                    ),
                 ));
             }
         }
@@ -190,5 +201,8 @@ fn sheet_batch(path: &str, sheet: &str, range: &Range<Data>) -> Result<RecordBat
 
 /// A MemTable of one sheet.
 pub fn sheet_table(sheet: &Sheet) -> Result<Arc<MemTable>> {
-    Ok(Arc::new(MemTable::try_new(sheet.batch.schema(), vec![vec![sheet.batch.clone()]])?))
+    Ok(Arc::new(MemTable::try_new(
+        sheet.batch.schema(),
+        vec![vec![sheet.batch.clone()]],
+    )?))
 }

@@ -95,14 +95,23 @@ impl BatchInputs {
         let y = f64s(&values[0])?;
         let exposure = (kind == FitKind::PoissonRate).then(|| f64s(&values[1])).transpose()?;
         let mut predictors = Vec::with_capacity(spec.predictors.len());
-        for ((p, a), d) in spec.predictors.iter().zip(&values[lead..need]).zip(dictionaries.iter_mut()) {
+        for ((p, a), d) in spec
+            .predictors
+            .iter()
+            .zip(&values[lead..need])
+            .zip(dictionaries.iter_mut())
+        {
             predictors.push(if p.factor {
                 BatchColumn::Codes(codes(a, d)?)
             } else {
                 BatchColumn::Numeric(f64s(a)?)
             });
         }
-        Ok(BatchInputs { y, exposure, predictors })
+        Ok(BatchInputs {
+            y,
+            exposure,
+            predictors,
+        })
     }
 
     #[allow(clippy::len_without_is_empty)]
@@ -147,7 +156,10 @@ impl BatchInputs {
             _ => None,
         };
         if let Some(why) = bad_y {
-            return Some(format!("{function}: {} value {y} {why} {hint}", kind.leading_names()[0]));
+            return Some(format!(
+                "{function}: {} value {y} {why} {hint}",
+                kind.leading_names()[0]
+            ));
         }
         let e = self.exposure_at(row);
         if kind == FitKind::PoissonRate && !(e.is_finite() && e > 0.0) {
@@ -157,7 +169,10 @@ impl BatchInputs {
             if let BatchColumn::Numeric(a) = c {
                 let v = a.value(row);
                 if !v.is_finite() {
-                    return Some(format!("{function}: predictor {} value {v} must be finite {hint}", p.name));
+                    return Some(format!(
+                        "{function}: predictor {} value {v} must be finite {hint}",
+                        p.name
+                    ));
                 }
             }
         }

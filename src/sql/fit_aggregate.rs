@@ -431,7 +431,10 @@ fn group_factor(codes: &[u32], dictionary: &Dictionary) -> (Vec<u32>, Vec<String
     for (r, &k) in by_label.iter().enumerate() {
         rank[k] = r as u32;
     }
-    let levels = by_label.iter().map(|&k| dictionary.labels[present[k] as usize].clone()).collect();
+    let levels = by_label
+        .iter()
+        .map(|&k| dictionary.labels[present[k] as usize].clone())
+        .collect();
     let local = codes
         .iter()
         .map(|c| rank[present.binary_search(c).unwrap_or(0)])

@@ -160,7 +160,11 @@ impl GroupPatterns {
             let t = if p.factor { DataType::Utf8 } else { DataType::Float64 };
             fields.push(Field::new(format!("{name}[pattern {i}]"), list(t), true));
         }
-        fields.push(Field::new(format!("{name}[pattern sums]"), list(DataType::Float64), true));
+        fields.push(Field::new(
+            format!("{name}[pattern sums]"),
+            list(DataType::Float64),
+            true,
+        ));
         fields.push(Field::new(format!("{name}[skipped]"), DataType::UInt64, true));
         fields.push(Field::new(format!("{name}[invalid]"), DataType::UInt64, true));
         fields.into_iter().map(Arc::new).collect()
@@ -248,11 +252,18 @@ impl GroupPatterns {
         self.ensure_groups(total_groups);
         let np = self.spec.predictors.len();
         if states.len() != np + 3 {
-            return Err(state_error(format!("{} state arrays, expected {}", states.len(), np + 3)));
+            return Err(state_error(format!(
+                "{} state arrays, expected {}",
+                states.len(),
+                np + 3
+            )));
         }
         let lists: Vec<&ListArray> = states[..np + 1]
             .iter()
-            .map(|a| a.as_list_opt::<i32>().ok_or_else(|| state_error("a state column is not a list".into())))
+            .map(|a| {
+                a.as_list_opt::<i32>()
+                    .ok_or_else(|| state_error("a state column is not a list".into()))
+            })
             .collect::<Result<_>>()?;
         let counts = |a: &ArrayRef| {
             a.as_primitive_opt::<UInt64Type>()
@@ -271,7 +282,10 @@ impl GroupPatterns {
             .ok_or_else(|| state_error("the pattern sums are not Float64".into()))?;
         let values: Vec<ArrayRef> = lists[..np].iter().map(|l| l.values().clone()).collect();
         // Decode the pattern values like input values (the response slots are unused).
-        let mut leading: Vec<ArrayRef> = vec![Arc::new(Float64Array::from(vec![1.0; values.first().map_or(0, |v| v.len())]))];
+        let mut leading: Vec<ArrayRef> = vec![Arc::new(Float64Array::from(vec![
+            1.0;
+            values.first().map_or(0, |v| v.len())
+        ]))];
         if self.kind == FitKind::PoissonRate {
             leading.push(leading[0].clone());
         }
