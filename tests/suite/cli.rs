@@ -100,3 +100,46 @@ fn the_demo_runs_and_shows_the_cautions() {
     assert!(out.contains("Quarry Hill") && out.contains("boundary estimate"));
     assert!(out.contains("To explore the same data yourself"));
 }
+
+#[test]
+fn hostile_files_are_refused_naming_the_file_and_odd_delimiters_are_read() {
+    let dir = std::env::temp_dir().join(format!("ratesheet-hostile-{}", std::process::id()));
+    std::fs::create_dir_all(&dir).unwrap();
+    let path = |name: &str| dir.join(name).to_string_lossy().into_owned();
+    std::fs::write(path("empty.parquet"), b"").unwrap();
+    std::fs::write(path("header.csv"), "a,b\n").unwrap();
+    std::fs::write(path("semi.csv"), "a;b\n1;2\n3;4\n").unwrap();
+    let parquet = std::fs::read(concat!(env!("CARGO_MANIFEST_DIR"), "/demo-parquet/pipe_breaks.parquet")).unwrap();
+    std::fs::write(path("cut.parquet"), &parquet[..parquet.len() / 2]).unwrap();
+    for (file, expected) in [
+        ("empty.parquet", "the file is empty (0 bytes)"),
+        ("header.csv", "the file has a header line but no data rows"),
+        ("cut.parquet", "cut.parquet"),
+    ] {
+        let (code, _, err) = run(&[&path(file), "-e", "SELECT 1"]);
+        assert_eq!(code, 1, "{file}: {err}");
+        assert!(err.contains(expected) && err.contains(file), "{file}: {err}");
+    }
+    let (code, out, err) = run(&[&path("semi.csv"), "-e", "SELECT SUM(b) AS s FROM semi", "--format", "csv"]);
+    assert_eq!((code, out.as_str()), (0, "s\n6\n"), "{err}");
+    assert!(err.contains("separated by semicolons"), "{err}");
+    std::fs::remove_dir_all(&dir).unwrap();
+}
+
+#[test]
+fn save_to_writes_a_workbook_that_opens_again_as_a_table() {
+    let dir = std::env::temp_dir().join(format!("ratesheet-saveto-{}", std::process::id()));
+    std::fs::create_dir_all(&dir).unwrap();
+    let book = dir.join("counts.xlsx").to_string_lossy().into_owned();
+    let sql = "SELECT material, SUM(breaks) AS breaks, SUM(km_years) AS km_years FROM pipe_breaks GROUP BY material ORDER BY material";
+    let (code, _, err) = run(&["demo-parquet/pipe_breaks.parquet", "-e", sql, "--save-to", &book]);
+    assert_eq!(code, 0, "{err}");
+    let (code, _, err) = run(&["demo-parquet/pipe_breaks.parquet", "-e", sql, "--save-to", &book]);
+    assert_eq!(code, 1);
+    assert!(err.contains("exists; add --replace"), "{err}");
+    let (_, direct, _) = run(&["demo-parquet/pipe_breaks.parquet", "-e", sql, "--format", "csv"]);
+    let (code, reopened, err) = run(&[&book, "-e", "SELECT * FROM counts ORDER BY material", "--format", "csv"]);
+    assert_eq!(code, 0, "{err}");
+    assert_eq!(reopened, direct);
+    std::fs::remove_dir_all(&dir).unwrap();
+}
