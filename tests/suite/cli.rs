@@ -120,7 +120,13 @@ fn hostile_files_are_refused_naming_the_file_and_odd_delimiters_are_read() {
         assert_eq!(code, 1, "{file}: {err}");
         assert!(err.contains(expected) && err.contains(file), "{file}: {err}");
     }
-    let (code, out, err) = run(&[&path("semi.csv"), "-e", "SELECT SUM(b) AS s FROM semi", "--format", "csv"]);
+    let (code, out, err) = run(&[
+        &path("semi.csv"),
+        "-e",
+        "SELECT SUM(b) AS s FROM semi",
+        "--format",
+        "csv",
+    ]);
     assert_eq!((code, out.as_str()), (0, "s\n6\n"), "{err}");
     assert!(err.contains("separated by semicolons"), "{err}");
     std::fs::remove_dir_all(&dir).unwrap();
