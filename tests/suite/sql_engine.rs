@@ -422,20 +422,17 @@ async fn pattern_sums_and_row_buffers_give_the_same_fits() {
             let ctx = ctx.clone();
             async move { fits(&collect(&ctx, &sql).await) }
         };
-        let patterns = run(
-            "SELECT district, poisson_fit(claims, holders, car_group, CAST(age AS BIGINT), 'se=hc1') AS fit \
-             FROM (SELECT district, claims, holders, car_group, CASE age_band WHEN '<25' THEN 1 WHEN '25-29' THEN 2 \
-             WHEN '30-35' THEN 3 ELSE 4 END AS age FROM insurance) GROUP BY district ORDER BY district"
-                .into(),
-        )
-        .await;
-        let rows = run(
-            "SELECT district, poisson_fit(claims, holders, car_group, CAST(age AS DOUBLE), 'se=hc1') AS fit \
-             FROM (SELECT district, claims, holders, car_group, CASE age_band WHEN '<25' THEN 1 WHEN '25-29' THEN 2 \
-             WHEN '30-35' THEN 3 ELSE 4 END AS age FROM insurance) GROUP BY district ORDER BY district"
-                .into(),
-        )
-        .await;
+        // The age band as a whole number 1..4: BIGINT routes to pattern sums, DOUBLE to rows.
+        let sql = |age_type: &str| {
+            format!(
+                "SELECT district, poisson_fit(claims, holders, car_group, CAST(age AS {age_type}), 'se=hc1') AS fit \
+                 FROM (SELECT district, claims, holders, car_group, CASE age_band WHEN '<25' THEN 1 \
+                 WHEN '25-29' THEN 2 WHEN '30-35' THEN 3 ELSE 4 END AS age FROM insurance) \
+                 GROUP BY district ORDER BY district"
+            )
+        };
+        let patterns = run(sql("BIGINT")).await;
+        let rows = run(sql("DOUBLE")).await;
         assert_eq!(patterns.len(), rows.len());
         for ((ka, fa, ra), (kb, fb, rb)) in patterns.iter().zip(&rows) {
             assert_eq!(ka, kb);
