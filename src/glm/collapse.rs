@@ -108,8 +108,11 @@ impl Sums {
     /// Sums from [`Sums::to_array`]; None unless the row count is a whole number >= 1 and the
     /// count and exposure totals are finite with exposure > 0.
     pub fn from_array(v: [f64; 13]) -> Option<Sums> {
+        // Sums of valid rows can overflow to infinity at extreme magnitudes (y·y/e with e = 1e-300),
+        // and opposite infinities can merge to NaN in the overdispersion sums; the statistics that
+        // use them are then NULL. Only the row count and the two totals must be well-formed.
         let ok = v[0] >= 1.0 && v[0].fract() == 0.0 && v[0] < 9.0e15 && v[1] >= 0.0 && v[2] > 0.0;
-        (ok && v.iter().all(|x| x.is_finite())).then(|| Sums {
+        ok.then(|| Sums {
             rows: v[0] as usize,
             y: v[1],
             e: v[2],

@@ -163,6 +163,33 @@ pub struct FitColumns {
 }
 
 /// A fit-level value before it is placed in its typed column.
+/// The one exit point for numbers: non-finite values become NULL and -0.0 becomes 0.
+fn reportable(v: Option<f64>) -> Option<f64> {
+    v.filter(|x| x.is_finite()).map(|x| x + 0.0)
+}
+
+/// A term row with only reportable numbers; an estimate lost that way is flagged, never a
+/// silent NULL.
+fn reportable_term(mut t: TermRow) -> TermRow {
+    if t.flag.is_none() && t.estimate.is_some_and(|e| !e.is_finite()) {
+        t.flag = Some("not estimated");
+    }
+    for v in [
+        &mut t.estimate,
+        &mut t.std_error,
+        &mut t.statistic,
+        &mut t.p_value,
+        &mut t.ci_low,
+        &mut t.ci_high,
+        &mut t.rate_ratio,
+        &mut t.rr_low,
+        &mut t.rr_high,
+    ] {
+        *v = reportable(*v);
+    }
+    t
+}
+
 enum Value {
     Text(Option<String>),
     UInt(Option<u64>),
@@ -246,12 +273,12 @@ impl FitColumns {
             match v {
                 Value::Text(v) => self.text[i].push(v),
                 Value::UInt(v) => self.uints[i].push(v),
-                Value::Float(v) => self.floats[i].push(v),
+                Value::Float(v) => self.floats[i].push(reportable(v)),
                 Value::Bool(v) => self.bools[i].push(v),
             }
         }
         let names: Vec<String> = g.terms.iter().map(|t| t.term.clone()).collect();
-        self.terms.extend(g.terms);
+        self.terms.extend(g.terms.into_iter().map(reportable_term));
         self.term_offsets.push(self.terms.len() as i32);
         self.predictors.extend(g.predictors);
         self.predictor_offsets.push(self.predictors.len() as i32);

@@ -135,3 +135,31 @@ async fn sql_examples_pass() {
     }
     assert!(failures.is_empty(), "{}", failures.join("\n\n"));
 }
+
+/// Ids `[Bnn]` in `text`, in order of first appearance.
+fn matrix_ids(text: &str) -> Vec<String> {
+    let mut ids = Vec::new();
+    for (i, _) in text.match_indices("[B") {
+        let id: String = text[i + 1..].chars().take(3).collect();
+        let digits = id[1..].chars().all(|c| c.is_ascii_digit());
+        if id.len() == 3 && digits && text[i + 4..].starts_with(']') && !ids.contains(&id) {
+            ids.push(id);
+        }
+    }
+    ids
+}
+
+/// The README's bad-input matrix and `10_bad_input.slt` name the same cases: a row added to one
+/// without a test in the other fails here.
+#[test]
+fn the_bad_input_matrix_matches_its_tests() {
+    let root = PathBuf::from(env!("CARGO_MANIFEST_DIR"));
+    let readme = std::fs::read_to_string(root.join("README.md")).unwrap();
+    let slt = std::fs::read_to_string(root.join("sql-examples/10_bad_input.slt")).unwrap();
+    let mut in_readme = matrix_ids(&readme);
+    let mut in_tests = matrix_ids(&slt);
+    assert!(in_readme.len() >= 26, "README matrix has {} rows", in_readme.len());
+    in_readme.sort();
+    in_tests.sort();
+    assert_eq!(in_readme, in_tests);
+}
