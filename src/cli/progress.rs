@@ -82,7 +82,7 @@ pub async fn collect_with_progress(ctx: &SessionContext, sql: &str, show: bool) 
     let df = ctx.sql(sql).await?;
     let plan = df.create_physical_plan().await?;
     let leaves = scans(&plan);
-    let run = collect(plan, ctx.task_ctx());
+    let run = super::guard::without_panics("the query", collect(plan, ctx.task_ctx()));
     if !show {
         return run.await.map_err(|e| naming_files(e, &leaves));
     }

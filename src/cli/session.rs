@@ -138,6 +138,11 @@ fn free_name(ctx: &SessionContext, name: String, path: &str) -> Result<String> {
 /// a workbook opens one table per sheet (`name_sheet` when it has several) and returns the
 /// names separated by ", ".
 pub async fn open_table(ctx: &SessionContext, path: &str, name: Option<&str>) -> Result<String> {
+    let (ctx, owned, name) = (ctx.clone(), path.to_string(), name.map(str::to_string));
+    super::guard::without_panics(path, async move { open_unguarded(&ctx, &owned, name.as_deref()).await }).await
+}
+
+async fn open_unguarded(ctx: &SessionContext, path: &str, name: Option<&str>) -> Result<String> {
     let base = name.map(str::to_string).unwrap_or_else(|| table_name_for(path));
     let format = format_of(path)?;
     if format == "xlsx" {

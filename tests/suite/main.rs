@@ -6,6 +6,7 @@ mod core_closed_form;
 mod core_reference;
 mod core_simulation;
 mod demo;
+mod hostile_files;
 mod shell;
 mod sql_engine;
 mod sql_examples;

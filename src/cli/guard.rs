@@ -1,0 +1,29 @@
+//! Panics inside the readers become errors. Decoders of file formats can panic on damaged
+//! metadata (a fuzzed Parquet footer made the Arrow schema decoder panic); a damaged file must
+//! be refused with an error, never end the session.
+
+use std::future::Future;
+
+use datafusion::error::{DataFusionError, Result};
+
+/// Runs `work` on its own task; a panic there becomes an execution error starting with `what`.
+pub async fn without_panics<T: Send + 'static>(
+    what: &str,
+    work: impl Future<Output = Result<T>> + Send + 'static,
+) -> Result<T> {
+    match tokio::spawn(work).await {
+        Ok(result) => result,
+        Err(e) if e.is_panic() => {
+            let payload = e.into_panic();
+            let text = payload
+                .downcast_ref::<String>()
+                .cloned()
+                .or_else(|| payload.downcast_ref::<&str>().map(|s| s.to_string()))
+                .unwrap_or_else(|| "no message".into());
+            Err(DataFusionError::Execution(format!(
+                "{what}: the reader failed on damaged data ({text})"
+            )))
+        }
+        Err(e) => Err(DataFusionError::Execution(format!("{what}: stopped ({e})"))),
+    }
+}
