@@ -4,14 +4,17 @@
 
 use std::future::Future;
 
+use datafusion::common::runtime::SpawnedTask;
 use datafusion::error::{DataFusionError, Result};
 
 /// Runs `work` on its own task; a panic there becomes an execution error starting with `what`.
+/// The task is aborted when the returned future is dropped (a cancelled statement must not
+/// keep running, or holding memory, in the background).
 pub async fn without_panics<T: Send + 'static>(
     what: &str,
     work: impl Future<Output = Result<T>> + Send + 'static,
 ) -> Result<T> {
-    match tokio::spawn(work).await {
+    match SpawnedTask::spawn(work).join().await {
         Ok(result) => result,
         Err(e) if e.is_panic() => {
             let payload = e.into_panic();

@@ -15,6 +15,7 @@ use datafusion::common::stats::Precision;
 use datafusion::datasource::physical_plan::FileScanConfig;
 use datafusion::datasource::source::DataSourceExec;
 use datafusion::error::{DataFusionError, Result};
+use datafusion::execution::memory_pool::MemoryLimit;
 use datafusion::physical_plan::{ExecutionPlan, collect};
 use datafusion::prelude::SessionContext;
 
@@ -83,8 +84,9 @@ pub async fn collect_with_progress(ctx: &SessionContext, sql: &str, show: bool) 
     let plan = df.create_physical_plan().await?;
     let leaves = scans(&plan);
     let run = super::guard::without_panics("the query", collect(plan, ctx.task_ctx()));
+    let explain = |e| naming_limit(naming_files(e, &leaves), ctx);
     if !show {
-        return run.await.map_err(|e| naming_files(e, &leaves));
+        return run.await.map_err(explain);
     }
     let total = total_rows(&leaves);
     let start = Instant::now();
@@ -100,7 +102,39 @@ pub async fn collect_with_progress(ctx: &SessionContext, sql: &str, show: bool) 
         }
     };
     drop(line);
-    result.map_err(|e| naming_files(e, &leaves))
+    result.map_err(explain)
+}
+
+/// Adds the session's memory limit to an out-of-memory error (DataFusion names the bytes it
+/// could not reserve, not the limit the user set).
+fn naming_limit(e: DataFusionError, ctx: &SessionContext) -> DataFusionError {
+    let MemoryLimit::Finite(limit) = ctx.runtime_env().memory_pool.memory_limit() else {
+        return e;
+    };
+    match e.find_root() {
+        DataFusionError::ResourcesExhausted(why) => DataFusionError::ResourcesExhausted(format!(
+            "the query needs more memory than the limit of {} (set with --memory-limit); \
+             raise the limit, or reduce the number of groups or predictors. Details: {why}",
+            short_bytes(limit)
+        )),
+        _ => e,
+    }
+}
+
+/// Bytes in binary units (`64 MiB`).
+pub fn short_bytes(b: usize) -> String {
+    let units = ["bytes", "KiB", "MiB", "GiB", "TiB"];
+    let mut v = b as f64;
+    let mut unit = 0;
+    while v >= 1024.0 && unit + 1 < units.len() {
+        v /= 1024.0;
+        unit += 1;
+    }
+    if unit == 0 {
+        format!("{b} bytes")
+    } else {
+        format!("{v:.1} {}", units[unit])
+    }
 }
 
 /// Adds the files the query was reading to an execution error (DataFusion's parse errors name

@@ -27,6 +27,14 @@ pub fn new_session(settings: &SessionSettings) -> Result<SessionContext> {
         runtime = runtime.with_memory_pool(Arc::new(FairSpillPool::new(limit)));
         // Merging spilled runs needs its own reservation; keep it well inside the limit.
         config = config.with_sort_spill_reservation_bytes((limit / 16).clamp(64 << 10, 10 << 20));
+        // DataFusion 55's hash repartition can wait forever when two of its inputs spill at once
+        // (upstream issue apache/datafusion#24883, fixed after 55). Under a memory limit, keep
+        // aggregations, joins and windows on plans without hash repartitioning: the final
+        // aggregation then runs on one partition, and spills or fails with a memory error.
+        let optimizer = &mut config.options_mut().optimizer;
+        optimizer.repartition_aggregations = false;
+        optimizer.repartition_joins = false;
+        optimizer.repartition_windows = false;
     }
     let ctx = SessionContext::new_with_config_rt(config, runtime.build_arc()?);
     crate::register_functions(&ctx)?;

@@ -7,6 +7,7 @@ mod core_reference;
 mod core_simulation;
 mod demo;
 mod hostile_files;
+mod limits;
 mod shell;
 mod sql_engine;
 mod sql_examples;
