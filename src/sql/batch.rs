@@ -202,3 +202,20 @@ impl BatchInputs {
 pub fn passes(filter: Option<&BooleanArray>, row: usize) -> bool {
     filter.is_none_or(|f| f.is_valid(row) && f.value(row))
 }
+
+/// An error for a state array that our own `state`/`convert_to_state` could not have written.
+pub fn state_error(what: String) -> DataFusionError {
+    DataFusionError::Execution(format!("malformed fit state: {what}"))
+}
+
+/// Adds a row count read from a state; counts beyond 2^53 rows cannot come from real data.
+pub fn add_count(total: &mut u64, more: u64) -> Result<()> {
+    const MAX_ROWS: u64 = 1 << 53;
+    match total.checked_add(more).filter(|&t| t <= MAX_ROWS) {
+        Some(t) => {
+            *total = t;
+            Ok(())
+        }
+        None => Err(state_error(format!("a row count ({more}) is impossibly large"))),
+    }
+}

@@ -21,7 +21,7 @@ use datafusion::arrow::datatypes::{DataType, Field, FieldRef};
 use datafusion::error::{DataFusionError, Result};
 use datafusion::logical_expr::EmitTo;
 
-use super::batch::{BatchColumn, BatchInputs, Dictionary, passes};
+use super::batch::{BatchColumn, BatchInputs, Dictionary, add_count, passes, state_error};
 use super::options::InvalidRows;
 use super::spec::{FitKind, FitSpec};
 
@@ -144,13 +144,13 @@ impl GroupRows {
 
     fn push_row(&mut self, inputs: &BatchInputs, row: usize, g: usize) -> Result<()> {
         if inputs.is_null(row) {
-            self.skipped[g] += 1;
+            self.skipped[g] = self.skipped[g].saturating_add(1);
             return Ok(());
         }
         if let Some(problem) = inputs.problem(self.kind, &self.spec, row) {
             match self.spec.settings.invalid {
                 InvalidRows::Skip => {
-                    self.invalid[g] += 1;
+                    self.invalid[g] = self.invalid[g].saturating_add(1);
                     return Ok(());
                 }
                 InvalidRows::Error => return Err(DataFusionError::Execution(problem)),
@@ -219,8 +219,8 @@ impl GroupRows {
             if g >= total_groups {
                 return Err(state_error(format!("group index {g} out of range")));
             }
-            self.skipped[g] += skipped.value(r);
-            self.invalid[g] += invalid.value(r);
+            add_count(&mut self.skipped[g], skipped.value(r))?;
+            add_count(&mut self.invalid[g], invalid.value(r))?;
             let (start, end) = (lists[0].value_offsets()[r], lists[0].value_offsets()[r + 1]);
             for l in &lists[1..] {
                 if (l.value_offsets()[r], l.value_offsets()[r + 1]) != (start, end) {
@@ -361,8 +361,4 @@ impl GroupRows {
         single.update(values, &indices, filter, n)?;
         single.to_state()
     }
-}
-
-fn state_error(what: String) -> DataFusionError {
-    DataFusionError::Execution(format!("malformed fit state: {what}"))
 }

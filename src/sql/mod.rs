@@ -10,6 +10,8 @@ pub mod fit_aggregate;
 pub mod fit_expected;
 pub mod fit_lr_test;
 pub mod fit_term;
+#[doc(hidden)]
+pub mod fuzzing;
 pub mod interaction;
 pub mod options;
 mod patterns;

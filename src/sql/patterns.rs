@@ -21,7 +21,7 @@ use datafusion::arrow::datatypes::{DataType, Field, FieldRef, Float64Type, UInt6
 use datafusion::error::{DataFusionError, Result};
 use datafusion::logical_expr::EmitTo;
 
-use super::batch::{BatchColumn, BatchInputs, Dictionary, FastMap, passes};
+use super::batch::{BatchColumn, BatchInputs, Dictionary, FastMap, add_count, passes, state_error};
 use super::options::InvalidRows;
 use super::spec::{FitKind, FitSpec};
 use crate::glm::collapse::Sums;
@@ -137,13 +137,13 @@ impl GroupPatterns {
             return Ok(false);
         }
         if inputs.is_null(row) {
-            self.skipped[g] += 1;
+            self.skipped[g] = self.skipped[g].saturating_add(1);
             return Ok(false);
         }
         if let Some(problem) = inputs.problem(self.kind, &self.spec, row) {
             return match self.spec.settings.invalid {
                 InvalidRows::Skip => {
-                    self.invalid[g] += 1;
+                    self.invalid[g] = self.invalid[g].saturating_add(1);
                     Ok(false)
                 }
                 InvalidRows::Error => Err(DataFusionError::Execution(problem)),
@@ -297,8 +297,8 @@ impl GroupPatterns {
             if g >= total_groups {
                 return Err(state_error(format!("group index {g} out of range")));
             }
-            self.skipped[g] = self.skipped[g].saturating_add(skipped.value(r));
-            self.invalid[g] = self.invalid[g].saturating_add(invalid.value(r));
+            add_count(&mut self.skipped[g], skipped.value(r))?;
+            add_count(&mut self.invalid[g], invalid.value(r))?;
             let (s0, s1) = (sum_offsets[r], sum_offsets[r + 1]);
             if s0 < 0 || s1 < s0 || s1 as usize > sums.len() || (s1 - s0) as usize % SUMS != 0 {
                 return Err(state_error("pattern sums offsets out of range".into()));
@@ -383,8 +383,4 @@ impl GroupPatterns {
         *self = kept;
         taken
     }
-}
-
-fn state_error(what: String) -> DataFusionError {
-    DataFusionError::Execution(format!("malformed fit state: {what}"))
 }

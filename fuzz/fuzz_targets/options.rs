@@ -1,0 +1,6 @@
+//! Arbitrary options strings applied to the default fit settings: errors, no panics.
+#![no_main]
+
+libfuzzer_sys::fuzz_target!(|data: &[u8]| {
+    ratesheet::sql::fuzzing::apply_arbitrary_options(data);
+});
