@@ -10,6 +10,7 @@ mod fuzz_inputs;
 mod hostile_files;
 mod limits;
 mod shell;
+mod soak;
 mod sql_engine;
 mod sql_examples;
 mod sql_smoke;
