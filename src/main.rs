@@ -159,6 +159,7 @@ async fn main() -> ExitCode {
         format: args.format,
         digits: args.digits,
         max_rows: if interactive { 40 } else { usize::MAX },
+        width: ratesheet::cli::render::terminal_width(),
     };
     let text = match (&args.execute, &args.script) {
         (Some(sql), _) => sql.clone(),
@@ -235,6 +236,7 @@ async fn run_demo(ctx: &datafusion::prelude::SessionContext, digits: usize) -> E
         format: Format::Table,
         digits,
         max_rows: 30,
+        width: ratesheet::cli::render::terminal_width(),
     };
     println!("{}\n", ratesheet::cli::shell::CAUTION);
     for block in text.split("\n\n") {

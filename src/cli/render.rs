@@ -26,6 +26,15 @@ pub struct Style {
     pub digits: usize,
     /// Rows shown in table and Markdown output before the rest is summarised.
     pub max_rows: usize,
+    /// Width to fold text tables into (the terminal's); None leaves them as wide as they are.
+    pub width: Option<usize>,
+}
+
+/// The width of the terminal on stdout, if stdout is one.
+pub fn terminal_width() -> Option<usize> {
+    terminal_size::terminal_size()
+        .map(|(w, _)| w.0 as usize)
+        .filter(|&w| w >= 20)
 }
 
 const NULL_MARK: &str = "∅";
@@ -219,18 +228,25 @@ fn text_table(batches: &[RecordBatch], style: &Style) -> Result<String> {
             );
         }
     }
-    let width = |s: &str| s.chars().count();
+    let markdown = style.format == Format::Markdown;
+    let fold = style.width.filter(|_| !markdown);
+    if let Some(w) = fold {
+        shorten_text_cells(&mut rows, (w / 2).max(24));
+    }
     let widths: Vec<usize> = (0..names.len())
         .map(|j| {
             rows.iter()
-                .map(|r| width(&r[j].0))
-                .chain([width(&names[j])])
+                .map(|r| text_width(&r[j].0))
+                .chain([text_width(&names[j])])
                 .max()
                 .unwrap_or(1)
         })
         .collect();
+    let blocks = match fold {
+        Some(w) => column_blocks(&widths, w),
+        None => vec![(0..names.len()).collect()],
+    };
     let mut out = String::new();
-    let markdown = style.format == Format::Markdown;
     let line = |cells: Vec<String>| -> String {
         if markdown {
             format!("| {} |\n", cells.join(" | "))
@@ -238,22 +254,43 @@ fn text_table(batches: &[RecordBatch], style: &Style) -> Result<String> {
             format!("{}\n", cells.join("  ").trim_end())
         }
     };
-    out.push_str(&line(
-        names.iter().zip(&widths).map(|(n, w)| format!("{n:<w$}")).collect(),
-    ));
-    out.push_str(&line(
-        widths
-            .iter()
-            .map(|w| if markdown { "-".repeat(*w) } else { "─".repeat(*w) })
-            .collect(),
-    ));
-    for r in &rows {
+    for (k, block) in blocks.iter().enumerate() {
+        if blocks.len() > 1 {
+            let gap = if k > 0 { "\n" } else { "" };
+            out.push_str(&format!(
+                "{gap}(part {} of {}, folded to the terminal width)\n",
+                k + 1,
+                blocks.len()
+            ));
+        }
+        out.push_str(&line(block.iter().map(|&j| pad_right(&names[j], widths[j])).collect()));
         out.push_str(&line(
-            r.iter()
-                .zip(&widths)
-                .map(|((s, num), w)| if *num { format!("{s:>w$}") } else { format!("{s:<w$}") })
+            block
+                .iter()
+                .map(|&j| {
+                    if markdown {
+                        "-".repeat(widths[j])
+                    } else {
+                        "─".repeat(widths[j])
+                    }
+                })
                 .collect(),
         ));
+        for r in &rows {
+            out.push_str(&line(
+                block
+                    .iter()
+                    .map(|&j| {
+                        let (s, num) = &r[j];
+                        if *num {
+                            pad_left(s, widths[j])
+                        } else {
+                            pad_right(s, widths[j])
+                        }
+                    })
+                    .collect(),
+            ));
+        }
     }
     if total > rows.len() {
         out.push_str(&format!("… {} more rows not shown\n", total - rows.len()));
@@ -262,6 +299,47 @@ fn text_table(batches: &[RecordBatch], style: &Style) -> Result<String> {
         out.push_str(&fit_cards(batches, style)?);
     }
     Ok(out)
+}
+
+fn text_width(s: &str) -> usize {
+    s.chars().count()
+}
+
+fn pad_right(s: &str, w: usize) -> String {
+    format!("{s}{}", " ".repeat(w.saturating_sub(text_width(s))))
+}
+
+fn pad_left(s: &str, w: usize) -> String {
+    format!("{}{s}", " ".repeat(w.saturating_sub(text_width(s))))
+}
+
+/// Text cells longer than `limit` characters end in '…' (numbers are never cut).
+fn shorten_text_cells(rows: &mut [Vec<(String, bool)>], limit: usize) {
+    for cell in rows.iter_mut().flatten() {
+        if !cell.1 && text_width(&cell.0) > limit {
+            let kept: String = cell.0.chars().take(limit - 1).collect();
+            cell.0 = format!("{kept}…");
+        }
+    }
+}
+
+/// Splits columns into blocks that fit `width` (columns separated by two spaces). Every block
+/// after the first starts again with column 0, the row label, so rows can be matched up.
+fn column_blocks(widths: &[usize], width: usize) -> Vec<Vec<usize>> {
+    let mut blocks: Vec<Vec<usize>> = Vec::new();
+    let mut block = vec![0];
+    let mut used = widths.first().copied().unwrap_or(0);
+    for (j, &w) in widths.iter().enumerate().skip(1) {
+        if used + 2 + w > width && block.len() > 1 {
+            blocks.push(std::mem::replace(&mut block, vec![0, j]));
+            used = widths[0] + 2 + w;
+        } else {
+            block.push(j);
+            used += 2 + w;
+        }
+    }
+    blocks.push(block);
+    blocks
 }
 
 /// One display formatter per column of `b`.

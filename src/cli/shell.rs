@@ -255,15 +255,25 @@ impl Shell {
         let ctx = self.ctx.clone();
         let owned = sql.to_string();
         let progress = self.progress;
-        let task = tokio::spawn(async move { collect_with_progress(&ctx, &owned, progress).await });
-        let abort = task.abort_handle();
+        let mut task = tokio::spawn(async move { collect_with_progress(&ctx, &owned, progress).await });
         let outcome = tokio::select! {
-            r = task => r,
-            _ = tokio::signal::ctrl_c() => { abort.abort(); eprintln!("cancelled"); return; }
+            r = &mut task => r,
+            _ = tokio::signal::ctrl_c() => {
+                // Wait for the statement to unwind, so its progress line is erased first.
+                task.abort();
+                let _ = task.await;
+                eprintln!("cancelled");
+                return;
+            }
         };
         match outcome {
             Ok(Ok(batches)) => {
-                match render(&batches, &self.style) {
+                // Follow the terminal's width as the user resizes it.
+                let mut style = self.style;
+                if style.width.is_some() {
+                    style.width = super::render::terminal_width().or(style.width);
+                }
+                match render(&batches, &style) {
                     Ok(text) => print!("{text}"),
                     Err(e) => eprintln!("error: {e}"),
                 }
@@ -469,6 +479,7 @@ pub fn save_batches(
                     format: if ext == "csv" { Format::Csv } else { Format::Json },
                     digits: 17,
                     max_rows: usize::MAX,
+                    width: None,
                 };
                 let mut file = file;
                 file.write_all(render(batches, &style)?.as_bytes())?;

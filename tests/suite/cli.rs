@@ -149,3 +149,126 @@ fn save_to_writes_a_workbook_that_opens_again_as_a_table() {
     assert_eq!(reopened, direct);
     std::fs::remove_dir_all(&dir).unwrap();
 }
+
+/// Wide results fold into parts that fit the width, each starting with the first column; long
+/// text is shortened, numbers never.
+#[test]
+fn wide_tables_fold_to_the_terminal_width() {
+    use datafusion::arrow::array::{ArrayRef, Float64Array, RecordBatch, StringArray};
+    use ratesheet::cli::render::{Format, Style, render};
+    let mut columns: Vec<(String, ArrayRef)> = vec![(
+        "district".into(),
+        std::sync::Arc::new(StringArray::from(vec!["Riverside", "Kiln Row"])),
+    )];
+    for k in 0..8 {
+        columns.push((
+            format!("rate_ratio_{k}"),
+            std::sync::Arc::new(Float64Array::from(vec![1.0 + k as f64 / 3.0, 123456.789])),
+        ));
+    }
+    let long = "a long note ".repeat(10);
+    columns.push((
+        "note".into(),
+        std::sync::Arc::new(StringArray::from(vec![long.as_str(), "short"])),
+    ));
+    let batch = RecordBatch::try_from_iter(columns).unwrap();
+    let style = |width| Style {
+        format: Format::Table,
+        digits: 6,
+        max_rows: 100,
+        width,
+    };
+    let folded = render(std::slice::from_ref(&batch), &style(Some(60))).unwrap();
+    let parts = folded.matches("folded to the terminal width").count();
+    assert!(parts >= 3, "{folded}");
+    assert_eq!(folded.matches("district").count(), parts, "{folded}");
+    assert!(folded.lines().all(|l| l.chars().count() <= 60), "{folded}");
+    assert!(
+        folded.contains("123457") && folded.contains("a long note a long note a lon…"),
+        "{folded}"
+    );
+    for k in 0..8 {
+        assert!(folded.contains(&format!("rate_ratio_{k}")), "{folded}");
+    }
+    // Without a width (output to a file or pipe) nothing is folded or shortened.
+    let flat = render(&[batch], &style(None)).unwrap();
+    assert!(!flat.contains("folded") && flat.contains(long.trim_end()), "{flat}");
+}
+
+/// Workbook input: sheets become tables with inferred types; merged, blank or repeated header
+/// cells are refused naming the workbook, the sheet and the cell.
+#[test]
+fn workbooks_open_as_tables_and_bad_headers_are_refused() {
+    use rust_xlsxwriter::{Format, Workbook};
+    let dir = std::env::temp_dir().join(format!("ratesheet-books-{}", std::process::id()));
+    std::fs::create_dir_all(&dir).unwrap();
+    let book = |name: &str, fill: &dyn Fn(&mut rust_xlsxwriter::Worksheet)| {
+        let mut wb = Workbook::new();
+        fill(wb.add_worksheet().set_name("counts").unwrap());
+        let path = dir.join(name);
+        wb.save(&path).unwrap();
+        path.to_string_lossy().into_owned()
+    };
+    let good = {
+        let mut wb = Workbook::new();
+        let s = wb.add_worksheet().set_name("counts").unwrap();
+        for (c, h) in ["depot", "faults", "hours"].iter().enumerate() {
+            s.write_string(0, c as u16, *h).unwrap();
+        }
+        for (r, (d, f, h)) in [("north", 3, 120.5), ("south", 5, 98.25)].iter().enumerate() {
+            s.write_string(1 + r as u32, 0, *d).unwrap();
+            s.write_number(1 + r as u32, 1, *f as f64).unwrap();
+            s.write_number(1 + r as u32, 2, *h).unwrap();
+        }
+        wb.add_worksheet()
+            .set_name("notes")
+            .unwrap()
+            .write_string(0, 0, "text")
+            .unwrap();
+        wb.worksheet_from_name("notes")
+            .unwrap()
+            .write_string(1, 0, "kept")
+            .unwrap();
+        let path = dir.join("good.xlsx");
+        wb.save(&path).unwrap();
+        path.to_string_lossy().into_owned()
+    };
+    let (code, out, err) = run(&[
+        &good,
+        "-e",
+        "SELECT arrow_typeof(faults) AS t1, arrow_typeof(hours) AS t2, faults * 2 AS f FROM good_counts ORDER BY depot; SELECT * FROM good_notes",
+        "--format",
+        "csv",
+    ]);
+    assert_eq!(code, 0, "{err}");
+    assert_eq!(out, "t1,t2,f\nInt64,Float64,6\nInt64,Float64,10\ntext\nkept\n");
+
+    let merged = book("merged.xlsx", &|s| {
+        s.merge_range(0, 0, 0, 1, "rate", &Format::new()).unwrap();
+        s.write_number(1, 0, 1.0).unwrap();
+        s.write_number(1, 1, 2.0).unwrap();
+    });
+    let blank = book("blank.xlsx", &|s| {
+        s.write_string(0, 0, "a").unwrap();
+        s.write_number(1, 0, 1.0).unwrap();
+        s.write_number(1, 1, 2.0).unwrap();
+    });
+    let twice = book("twice.xlsx", &|s| {
+        s.write_string(0, 0, "a").unwrap();
+        s.write_string(0, 1, "a").unwrap();
+        s.write_number(1, 0, 1.0).unwrap();
+    });
+    for (path, says) in [
+        (&merged, "sheet counts: header cells A1:B1 are merged"),
+        (
+            &blank,
+            "sheet counts: the header cell B1 is blank but its column holds data",
+        ),
+        (&twice, "sheet counts: the column name a appears twice (again at B1)"),
+    ] {
+        let (code, _, err) = run(&[path, "-e", "SELECT 1"]);
+        assert_eq!(code, 1, "{path}: {err}");
+        assert!(err.contains(path.as_str()) && err.contains(says), "{path}: {err}");
+    }
+    std::fs::remove_dir_all(&dir).ok();
+}

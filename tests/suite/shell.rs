@@ -155,3 +155,27 @@ async fn xlsx_results_have_one_row_per_group_and_term() {
     );
     std::fs::remove_dir_all(&home).ok();
 }
+
+/// A statement running longer than a second shows a progress line on the terminal's stderr
+/// (rows read of the total from the Parquet footer); it is erased when the statement ends.
+#[test]
+fn long_statements_show_a_progress_line_that_is_erased() {
+    let home = temp_home("progress");
+    let mut p = shell(&home);
+    p.send_line(
+        "SELECT COUNT(*) FROM pipe_breaks a, pipe_breaks b, pipe_breaks c WHERE a.breaks + b.breaks + c.breaks < 0;",
+    )
+    .unwrap();
+    // The scans of a join report no total up front, so the line counts rows read.
+    p.exp_regex("(of [0-9.k]+ rows|[0-9.k]+ rows read)").unwrap();
+    p.send_control('c').unwrap();
+    let (shown, _) = p.exp_string("cancelled").map(|s| (s, ())).unwrap();
+    assert!(
+        shown.contains("\r\x1b[2K"),
+        "the progress line was not erased: {shown:?}"
+    );
+    p.exp_string("rates> ").unwrap();
+    p.send_line("~quit").unwrap();
+    p.exp_eof().unwrap();
+    std::fs::remove_dir_all(&home).ok();
+}
