@@ -4,18 +4,12 @@
 
 use ratesheet::sql::fuzzing::{apply_arbitrary_options, merge_arbitrary_state};
 
-/// SplitMix64, for reproducible inputs.
+use crate::support::Seeded;
+
+/// `len` reproducible bytes from `seed`.
 fn bytes(seed: u64, len: usize) -> Vec<u8> {
-    let mut s = seed;
-    (0..len)
-        .map(|_| {
-            s = s.wrapping_add(0x9E37_79B9_7F4A_7C15);
-            let mut z = s;
-            z = (z ^ (z >> 30)).wrapping_mul(0xBF58_476D_1CE4_E5B9);
-            z = (z ^ (z >> 27)).wrapping_mul(0x94D0_49BB_1331_11EB);
-            (z ^ (z >> 31)) as u8
-        })
-        .collect()
+    let mut g = Seeded(seed);
+    (0..len).map(|_| g.next() as u8).collect()
 }
 
 fn cases() -> u64 {

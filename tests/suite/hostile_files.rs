@@ -5,6 +5,8 @@ use std::path::{Path, PathBuf};
 
 use rexpect::session::spawn_command;
 
+use crate::support::Seeded;
+
 const DEMO: &str = concat!(env!("CARGO_MANIFEST_DIR"), "/demo-parquet/pipe_breaks.parquet");
 
 fn temp_dir(tag: &str) -> PathBuf {
@@ -126,23 +128,6 @@ fn every_hostile_kind_is_refused_naming_the_file_and_the_shell_goes_on() {
     p.send_line("~quit").unwrap();
     p.exp_eof().unwrap();
     std::fs::remove_dir_all(&dir).ok();
-}
-
-/// A small seeded generator (SplitMix64), so the corpus is the same on every run.
-struct Seeded(u64);
-
-impl Seeded {
-    fn next(&mut self) -> u64 {
-        self.0 = self.0.wrapping_add(0x9E37_79B9_7F4A_7C15);
-        let mut z = self.0;
-        z = (z ^ (z >> 30)).wrapping_mul(0xBF58_476D_1CE4_E5B9);
-        z = (z ^ (z >> 27)).wrapping_mul(0x94D0_49BB_1331_11EB);
-        z ^ (z >> 31)
-    }
-
-    fn below(&mut self, n: usize) -> usize {
-        (self.next() % n as u64) as usize
-    }
 }
 
 /// Damaged copies of the demo Parquet file: truncations, overwritten byte runs anywhere, and
