@@ -122,7 +122,7 @@ fn naming_limit(e: DataFusionError, ctx: &SessionContext) -> DataFusionError {
 }
 
 /// Bytes in binary units (`64 MiB`).
-pub fn short_bytes(b: usize) -> String {
+fn short_bytes(b: usize) -> String {
     let units = ["bytes", "KiB", "MiB", "GiB", "TiB"];
     let mut v = b as f64;
     let mut unit = 0;

@@ -105,8 +105,8 @@ impl Sums {
         ]
     }
 
-    /// Sums from [`Sums::to_array`]; None unless the row count is a whole number >= 1 and the
-    /// count and exposure totals are finite with exposure > 0.
+    /// Sums from [`Sums::to_array`]; None unless the row count is a whole number >= 1, the count
+    /// total is >= 0 and the exposure total is > 0 (NaN fails both).
     pub fn from_array(v: [f64; 13]) -> Option<Sums> {
         // Sums of valid rows can overflow to infinity at extreme magnitudes (y·y/e with e = 1e-300),
         // and opposite infinities can merge to NaN in the overdispersion sums; the statistics that
