@@ -10,6 +10,12 @@ use ratesheet::cli::session::{SessionSettings, new_session, open_table};
 use ratesheet::cli::shell::{Shell, save_batches};
 use std::io::IsTerminal;
 
+/// mimalloc instead of the system allocator: aggregations allocate and free many large
+/// buffers, which glibc's allocator returns to the OS and faults in again (measured with
+/// `cargo bench --bench fits`; see DEVELOPERS.md).
+#[global_allocator]
+static ALLOCATOR: mimalloc::MiMalloc = mimalloc::MiMalloc;
+
 #[derive(Parser, Debug)]
 #[command(
     name = "ratesheet",

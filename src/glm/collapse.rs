@@ -23,11 +23,10 @@
 use std::collections::HashMap;
 
 use nalgebra::DMatrix;
-use statrs::function::gamma::ln_gamma;
 
 use super::design::{ColumnKind, Design};
 use super::error::FitError;
-use super::family::{Family, Poisson, xlogy};
+use super::family::{Family, Poisson, log_factorial, y_log_y};
 use super::fit::{
     FitInput, FitOptions, GlmFit, TermState, aux_regression_t, fit_with_row_count, set_information_criteria,
 };
@@ -50,27 +49,6 @@ pub struct Sums {
     ay_over_e: f64,
     a: f64,
 }
-
-/// ln Γ(y+1) and y·ln y for the small whole counts that make up most rows.
-struct SmallCounts {
-    log_gamma: [f64; SMALL_COUNTS],
-    y_log_y: [f64; SMALL_COUNTS],
-}
-
-const SMALL_COUNTS: usize = 256;
-
-static SMALL: std::sync::LazyLock<SmallCounts> = std::sync::LazyLock::new(|| {
-    let mut t = SmallCounts {
-        log_gamma: [0.0; SMALL_COUNTS],
-        y_log_y: [0.0; SMALL_COUNTS],
-    };
-    for k in 0..SMALL_COUNTS {
-        let y = k as f64;
-        t.log_gamma[k] = ln_gamma(y + 1.0);
-        t.y_log_y[k] = xlogy(y, y);
-    }
-    t
-});
 
 impl Sums {
     /// The number of rows summed.
@@ -149,17 +127,15 @@ impl Sums {
     /// Adds one row: count y (finite, >= 0) with exposure e (finite, > 0).
     pub fn add(&mut self, y: f64, e: f64) {
         let a = y * y - y;
-        let small = (y.fract() == 0.0 && y < SMALL_COUNTS as f64).then_some(y as usize);
         self.rows += 1;
         self.y += y;
         self.e += e;
         self.yy += y * y;
         self.ye += y * e;
         self.ee += e * e;
-        let table = &*SMALL;
-        self.y_log_y += small.map_or_else(|| xlogy(y, y), |k| table.y_log_y[k]);
+        self.y_log_y += y_log_y(y);
         self.y_log_e += if y == 0.0 { 0.0 } else { y * e.ln() };
-        self.log_gamma += small.map_or_else(|| ln_gamma(y + 1.0), |k| table.log_gamma[k]);
+        self.log_gamma += log_factorial(y);
         self.yy_over_e += y * y / e;
         self.a2_over_e2 += a * a / (e * e);
         self.ay_over_e += a * y / e;

@@ -23,12 +23,35 @@ pub trait Family: Sync {
     fn inverse_link(&self, eta: f64) -> f64;
     /// dmu/deta at `eta`.
     fn mu_eta(&self, eta: f64) -> f64;
+    /// dmu/deta at `eta` when `mu` = inverse_link(eta) is already known (for the log link it
+    /// is mu itself, which saves an exp per row and iteration).
+    fn mu_eta_at(&self, eta: f64, mu: f64) -> f64 {
+        let _ = mu;
+        self.mu_eta(eta)
+    }
     /// Variance function V(mu).
     fn variance(&self, mu: f64) -> f64;
     /// Unit deviance d(y, mu) (the deviance is the weighted sum of these).
     fn unit_deviance(&self, y: f64, mu: f64) -> f64;
     /// Full log-likelihood of the fit (constants included).
     fn log_likelihood(&self, y: &[f64], mu: &[f64], w: &[f64]) -> f64;
+    /// The part of the deviance that does not depend on the fit, computed once per fit for
+    /// [`Family::step_deviance`].
+    fn deviance_constant(&self, y: &[f64], w: &[f64]) -> f64 {
+        let _ = (y, w);
+        0.0
+    }
+    /// The deviance at linear predictor `eta` (offset included) and means `mu`, for step
+    /// control inside IRLS; `constant` is [`Family::deviance_constant`]. The reported deviance
+    /// is always the sum of unit deviances.
+    fn step_deviance(&self, y: &[f64], eta: &[f64], mu: &[f64], w: &[f64], constant: f64) -> f64 {
+        let _ = (eta, constant);
+        y.iter()
+            .zip(mu)
+            .zip(w)
+            .map(|((&y, &m), &w)| w * self.unit_deviance(y, m))
+            .sum()
+    }
     /// Number of estimated parameters besides the coefficients (1 for an estimated scale).
     fn extra_parameters(&self) -> usize {
         usize::from(!self.fixed_scale())
@@ -81,6 +104,9 @@ impl Family for Poisson {
     fn mu_eta(&self, eta: f64) -> f64 {
         eta.exp()
     }
+    fn mu_eta_at(&self, _eta: f64, mu: f64) -> f64 {
+        mu
+    }
     fn variance(&self, mu: f64) -> f64 {
         mu
     }
@@ -93,8 +119,24 @@ impl Family for Poisson {
         y.iter()
             .zip(mu)
             .zip(w)
-            .map(|((&y, &m), &w)| w * (xlogy(y, m) - m - ln_gamma(y + 1.0)))
+            .map(|((&y, &m), &w)| w * (xlogy(y, m) - m - log_factorial(y)))
             .sum()
+    }
+    /// Σ w·y·log y.
+    fn deviance_constant(&self, y: &[f64], w: &[f64]) -> f64 {
+        y.iter().zip(w).map(|(&y, &w)| w * y_log_y(y)).sum()
+    }
+    /// With log mu = eta: D = 2·Σ w·(y·log y - y·eta - y + mu), without a logarithm per row.
+    /// A positive count whose mean underflowed to 0 makes the step unacceptable (infinite), as
+    /// the unit deviance does.
+    fn step_deviance(&self, y: &[f64], eta: &[f64], mu: &[f64], w: &[f64], constant: f64) -> f64 {
+        let mut sum = 0.0;
+        let mut lost = false;
+        for i in 0..y.len() {
+            sum += w[i] * (mu[i] - y[i] * (eta[i] + 1.0));
+            lost |= mu[i] == 0.0 && y[i] > 0.0;
+        }
+        if lost { f64::INFINITY } else { 2.0 * (constant + sum) }
     }
     fn has_boundary(&self) -> bool {
         true
@@ -172,6 +214,42 @@ pub(crate) fn crude_rate(y: &[f64], offset: &[f64], w: &[f64]) -> f64 {
 }
 
 /// y·log(mu), with 0·log(anything) = 0.
+/// ln Γ(y+1) and y·ln y for the small whole counts that make up most rows.
+struct SmallCounts {
+    log_factorial: [f64; SMALL_COUNTS],
+    y_log_y: [f64; SMALL_COUNTS],
+}
+
+const SMALL_COUNTS: usize = 256;
+
+static SMALL: std::sync::LazyLock<SmallCounts> = std::sync::LazyLock::new(|| {
+    let mut t = SmallCounts {
+        log_factorial: [0.0; SMALL_COUNTS],
+        y_log_y: [0.0; SMALL_COUNTS],
+    };
+    for k in 0..SMALL_COUNTS {
+        let y = k as f64;
+        t.log_factorial[k] = ln_gamma(y + 1.0);
+        t.y_log_y[k] = xlogy(y, y);
+    }
+    t
+});
+
+/// The table index of a small whole count.
+fn small(y: f64) -> Option<usize> {
+    (y >= 0.0 && y < SMALL_COUNTS as f64 && y.fract() == 0.0).then_some(y as usize)
+}
+
+/// ln Γ(y+1) (ln y! for whole y), from a table for whole y below 256.
+pub(crate) fn log_factorial(y: f64) -> f64 {
+    small(y).map_or_else(|| ln_gamma(y + 1.0), |k| SMALL.log_factorial[k])
+}
+
+/// y·ln y with 0·ln 0 = 0, from a table for whole y below 256.
+pub(crate) fn y_log_y(y: f64) -> f64 {
+    small(y).map_or_else(|| xlogy(y, y), |k| SMALL.y_log_y[k])
+}
+
 pub(crate) fn xlogy(y: f64, mu: f64) -> f64 {
     if y == 0.0 { 0.0 } else { y * mu.ln() }
 }

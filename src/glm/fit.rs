@@ -331,7 +331,7 @@ pub(crate) fn fit_with_row_count<F: Family>(
     let mut ww = vec![0.0; n];
     let mut score2 = vec![0.0; n];
     for i in 0..n {
-        let d = family.mu_eta(run.eta[i]);
+        let d = family.mu_eta_at(run.eta[i], run.mu[i]);
         let v = family.variance(run.mu[i]);
         ww[i] = w[i] * d * d / v;
         let s = w[i] * (y[i] - run.mu[i]) * d / v;
@@ -766,11 +766,12 @@ fn irls<F: Family>(
     let mut converged = false;
     let mut stalled = false;
     let mut iterations = 0;
+    let constant = family.deviance_constant(y, w);
 
     while iterations < opts.max_iter {
         iterations += 1;
         for i in 0..n {
-            let d = family.mu_eta(eta[i]);
+            let d = family.mu_eta_at(eta[i], mu[i]);
             let v = family.variance(mu[i]);
             if d > 0.0 && v > 0.0 && d.is_finite() {
                 ww[i] = w[i] * d * d / v;
@@ -794,7 +795,7 @@ fn irls<F: Family>(
             for i in 0..n {
                 trial_mu[i] = family.inverse_link(trial_eta[i]);
             }
-            trial_dev = weighted_deviance(family, y, &trial_mu, w);
+            trial_dev = family.step_deviance(y, &trial_eta, &trial_mu, w, constant);
             let acceptable = trial_dev.is_finite() && (first || trial_dev <= deviance + 1e-9 * (deviance.abs() + 0.1));
             if acceptable || halving == MAX_HALVINGS {
                 break;

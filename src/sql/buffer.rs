@@ -113,13 +113,19 @@ impl GroupRows {
     ) -> Result<()> {
         self.ensure_groups(total_groups);
         let inputs = BatchInputs::new(self.kind, &self.spec, values, &mut self.dictionaries)?;
+        self.push_decoded(&inputs, group_indices, filter)
+    }
+
+    /// Adds decoded rows: in bulk when the batch holds no NULL and no invalid value, else row
+    /// by row (NULL rows are counted as skipped, invalid ones follow the `invalid` option).
+    fn push_decoded(&mut self, inputs: &BatchInputs, group_indices: &[usize], filter: Option<&BooleanArray>) -> Result<()> {
         if filter.is_none() && inputs.no_nulls() && inputs.all_valid(self.kind) {
-            self.push_all(&inputs, group_indices);
+            self.push_all(inputs, group_indices);
             return Ok(());
         }
         for (row, &g) in group_indices.iter().enumerate() {
             if passes(filter, row) {
-                self.push_row(&inputs, row, g)?;
+                self.push_row(inputs, row, g)?;
             }
         }
         Ok(())
@@ -213,28 +219,37 @@ impl GroupRows {
         if lists.iter().any(|l| l.len() != n) || skipped.len() != n || invalid.len() != n {
             return Err(state_error("state arrays differ in length".into()));
         }
-        let values: Vec<ArrayRef> = lists.iter().map(|l| l.values().clone()).collect();
-        let inputs = BatchInputs::new(self.kind, &self.spec, &values, &mut self.dictionaries)?;
+        // Offsets are checked first; then the referenced elements (one contiguous range of
+        // each list's values) are added like input rows, each with its state row's group.
+        let offsets = lists[0].value_offsets();
+        let mut element_groups = Vec::new();
         for (r, &g) in group_indices.iter().enumerate() {
             if g >= total_groups {
                 return Err(state_error(format!("group index {g} out of range")));
             }
             add_count(&mut self.skipped[g], skipped.value(r))?;
             add_count(&mut self.invalid[g], invalid.value(r))?;
-            let (start, end) = (lists[0].value_offsets()[r], lists[0].value_offsets()[r + 1]);
+            let (start, end) = (offsets[r], offsets[r + 1]);
             for l in &lists[1..] {
                 if (l.value_offsets()[r], l.value_offsets()[r + 1]) != (start, end) {
                     return Err(state_error("state lists of one group differ in length".into()));
                 }
             }
-            if start < 0 || end < start || end as usize > values[0].len() {
+            if start < 0 || end < start || lists.iter().any(|l| end as usize > l.values().len()) {
                 return Err(state_error("state list offsets out of range".into()));
             }
-            for row in start as usize..end as usize {
-                self.push_row(&inputs, row, g)?;
-            }
+            element_groups.extend(std::iter::repeat_n(g, (end - start) as usize));
         }
-        Ok(())
+        if element_groups.is_empty() {
+            return Ok(());
+        }
+        let first = offsets[0] as usize;
+        let values: Vec<ArrayRef> = lists
+            .iter()
+            .map(|l| l.values().slice(first, element_groups.len()))
+            .collect();
+        let inputs = BatchInputs::new(self.kind, &self.spec, &values, &mut self.dictionaries)?;
+        self.push_decoded(&inputs, &element_groups, None)
     }
 
     /// Removes the groups `emit_to` asks for and returns them as a new buffer (group indices
@@ -295,10 +310,54 @@ impl GroupRows {
         (counts, order)
     }
 
-    /// Puts rows in canonical order (by their values), so that fits do not depend on the order in
-    /// which partitions were merged.
-    pub fn sort_canonically(&self, rows: &mut [usize]) {
-        rows.sort_unstable_by(|&a, &b| self.compare_rows(a, b).then(a.cmp(&b)));
+    /// Puts rows in a canonical order that depends only on their values, so that fits do not
+    /// depend on the order in which partitions were merged.
+    ///
+    /// The order is by a 64-bit hash of each row's values (factor labels hashed by their text,
+    /// not by their buffer-local codes), with runs of equal hashes ordered by the values
+    /// themselves. Rows with equal values are interchangeable, so the result is the same for
+    /// every arrival order. Sorting plain integer keys costs a fraction of comparing rows value
+    /// by value.
+    /// `label_hashes` is [`GroupRows::label_hashes`].
+    pub fn sort_canonically(&self, rows: &mut [usize], label_hashes: &[Vec<u64>]) {
+        let mut keyed: Vec<(u64, usize)> = rows.iter().map(|&i| (self.row_hash(i, label_hashes), i)).collect();
+        keyed.sort_unstable_by_key(|&(h, _)| h);
+        let mut start = 0;
+        while start < keyed.len() {
+            let mut end = start + 1;
+            while end < keyed.len() && keyed[end].0 == keyed[start].0 {
+                end += 1;
+            }
+            if end - start > 1 {
+                keyed[start..end].sort_unstable_by(|a, b| self.compare_rows(a.1, b.1));
+            }
+            start = end;
+        }
+        for (r, (_, i)) in rows.iter_mut().zip(keyed) {
+            *r = i;
+        }
+    }
+
+    /// A hash of every factor label, per predictor and code (empty for numeric predictors).
+    pub fn label_hashes(&self) -> Vec<Vec<u64>> {
+        self.dictionaries
+            .iter()
+            .map(|d| d.labels.iter().map(|l| hash_bytes(l.as_bytes())).collect())
+            .collect()
+    }
+
+    fn row_hash(&self, i: usize, label_hashes: &[Vec<u64>]) -> u64 {
+        let mut h = mix(mix(0, self.y[i].to_bits()), self.exposure[i].to_bits());
+        for (c, labels) in self.columns.iter().zip(label_hashes) {
+            h = mix(
+                h,
+                match c {
+                    Column::Numeric(v) => v[i].to_bits(),
+                    Column::Factor(codes) => labels[codes[i] as usize],
+                },
+            );
+        }
+        h
     }
 
     fn compare_rows(&self, a: usize, b: usize) -> std::cmp::Ordering {
@@ -361,4 +420,13 @@ impl GroupRows {
         single.update(values, &indices, filter, n)?;
         single.to_state()
     }
+}
+
+/// One step of a multiplicative hash (the constant is the 64-bit golden ratio).
+fn mix(h: u64, v: u64) -> u64 {
+    (h.rotate_left(23) ^ v).wrapping_mul(0x9e37_79b9_7f4a_7c15)
+}
+
+fn hash_bytes(bytes: &[u8]) -> u64 {
+    bytes.iter().fold(mix(0, bytes.len() as u64), |h, &b| mix(h, u64::from(b)))
 }

@@ -301,9 +301,10 @@ pub fn evaluate_groups(groups: &GroupSource) -> Result<datafusion::arrow::array:
     match groups {
         GroupSource::Rows(rows) => {
             let (offsets, mut order) = rows.buckets();
+            let label_hashes = rows.label_hashes();
             for g in 0..rows.num_groups() {
                 let idx = &mut order[offsets[g]..offsets[g + 1]];
-                rows.sort_canonically(idx);
+                rows.sort_canonically(idx, &label_hashes);
                 fit_group(&GroupData::from_rows(rows, g, idx), &mut out)?;
             }
         }

@@ -34,10 +34,17 @@ pub struct GroupPatterns {
     pub kind: FitKind,
     pub spec: FitSpec,
     pub dictionaries: Vec<Dictionary>,
-    index: FastMap<Box<[u64]>, u32>,
-    /// The key of every pattern slot, `stride` values each: group, then one value per
-    /// predictor (a factor code, or the bits of a number).
-    keys: Vec<u64>,
+    /// Distinct predictor-value tuples (a factor code, or the bits of a number, per predictor)
+    /// -> tuple id. Few tuples occur however many groups there are, so the per-row lookup stays
+    /// in cache and no slot owns an allocation.
+    tuples: FastMap<Box<[u64]>, u32>,
+    /// The values of every tuple, one per predictor, in tuple-id order.
+    tuple_values: Vec<u64>,
+    /// (group << 32 | tuple id) -> slot.
+    slots: FastMap<u64, u32>,
+    /// Group and tuple of every slot.
+    slot_group: Vec<u32>,
+    slot_tuple: Vec<u32>,
     pub sums: Vec<Sums>,
     pub skipped: Vec<u64>,
     pub invalid: Vec<u64>,
@@ -54,16 +61,19 @@ impl GroupPatterns {
             kind,
             dictionaries: vec![Dictionary::default(); spec.predictors.len()],
             spec,
-            index: FastMap::default(),
-            keys: Vec::new(),
+            tuples: FastMap::default(),
+            tuple_values: Vec::new(),
+            slots: FastMap::default(),
+            slot_group: Vec::new(),
+            slot_tuple: Vec::new(),
             sums: Vec::new(),
             skipped: Vec::new(),
             invalid: Vec::new(),
         }
     }
 
-    fn stride(&self) -> usize {
-        1 + self.spec.predictors.len()
+    fn width(&self) -> usize {
+        self.spec.predictors.len()
     }
 
     pub fn num_groups(&self) -> usize {
@@ -78,31 +88,44 @@ impl GroupPatterns {
     }
 
     pub fn size(&self) -> usize {
-        let stride = self.stride();
-        self.keys.capacity() * 8
+        self.tuple_values.capacity() * 8
+            + self.tuples.capacity() * (self.width() * 8 + 40)
+            + self.slots.capacity() * 16
+            + (self.slot_group.capacity() + self.slot_tuple.capacity()) * 4
             + self.sums.capacity() * std::mem::size_of::<Sums>()
-            + self.index.capacity() * (stride * 8 + 32)
             + (self.skipped.capacity() + self.invalid.capacity()) * 8
             + self.dictionaries.iter().map(Dictionary::bytes).sum::<usize>()
     }
 
-    /// The slot of a key, created empty when new.
-    fn slot(&mut self, key: &[u64]) -> usize {
-        if let Some(&s) = self.index.get(key) {
-            return s as usize;
+    /// The id of a predictor-value tuple, added when new.
+    fn tuple(&mut self, values: &[u64]) -> u32 {
+        if let Some(&t) = self.tuples.get(values) {
+            return t;
         }
-        let s = self.sums.len();
-        self.index.insert(key.into(), s as u32);
-        self.keys.extend_from_slice(key);
-        self.sums.push(Sums::default());
+        let t = self.tuples.len() as u32;
+        self.tuples.insert(values.into(), t);
+        self.tuple_values.extend_from_slice(values);
+        t
+    }
+
+    /// The slot of group `g` and tuple `t`, created empty when new.
+    fn slot(&mut self, g: usize, t: u32) -> usize {
+        let key = ((g as u64) << 32) | u64::from(t);
+        let next = self.sums.len();
+        let s = *self.slots.entry(key).or_insert(next as u32) as usize;
+        if s == next {
+            self.slot_group.push(g as u32);
+            self.slot_tuple.push(t);
+            self.sums.push(Sums::default());
+        }
         s
     }
 
-    fn key_of(inputs: &BatchInputs, row: usize, g: usize, key: &mut Vec<u64>) {
-        key.clear();
-        key.push(g as u64);
+    /// The predictor values of row `row` as tuple values.
+    fn values_of(inputs: &BatchInputs, row: usize, values: &mut Vec<u64>) {
+        values.clear();
         for p in &inputs.predictors {
-            key.push(match p {
+            values.push(match p {
                 BatchColumn::Numeric(a) => number_bits(a.value(row)),
                 BatchColumn::Codes(c) => c[row] as u64,
             });
@@ -119,13 +142,14 @@ impl GroupPatterns {
         self.ensure_groups(total_groups);
         let inputs = BatchInputs::new(self.kind, &self.spec, values, &mut self.dictionaries)?;
         let checked = filter.is_some() || !inputs.no_nulls() || !inputs.all_valid(self.kind);
-        let mut key = Vec::with_capacity(self.stride());
+        let mut values = Vec::with_capacity(self.width());
         for (row, &g) in group_indices.iter().enumerate() {
             if checked && !self.accept(&inputs, filter, row, g)? {
                 continue;
             }
-            Self::key_of(&inputs, row, g, &mut key);
-            let s = self.slot(&key);
+            Self::values_of(&inputs, row, &mut values);
+            let t = self.tuple(&values);
+            let s = self.slot(g, t);
             self.sums[s].add(inputs.y.value(row), inputs.exposure_at(row));
         }
         Ok(())
@@ -173,18 +197,17 @@ impl GroupPatterns {
     /// Pattern slots of each group: `order[offsets[g]..offsets[g + 1]]`.
     pub fn buckets(&self) -> (Vec<usize>, Vec<usize>) {
         let groups = self.num_groups();
-        let stride = self.stride();
         let mut counts = vec![0usize; groups + 1];
-        for s in 0..self.sums.len() {
-            counts[self.keys[s * stride] as usize + 1] += 1;
+        for &g in &self.slot_group {
+            counts[g as usize + 1] += 1;
         }
         for g in 0..groups {
             counts[g + 1] += counts[g];
         }
         let mut next = counts.clone();
         let mut order = vec![0usize; self.sums.len()];
-        for s in 0..self.sums.len() {
-            let g = self.keys[s * stride] as usize;
+        for (s, &g) in self.slot_group.iter().enumerate() {
+            let g = g as usize;
             order[next[g]] = s;
             next[g] += 1;
         }
@@ -193,7 +216,7 @@ impl GroupPatterns {
 
     /// Predictor `k`'s key value of slot `s`.
     pub fn value(&self, s: usize, k: usize) -> u64 {
-        self.keys[s * self.stride() + 1 + k]
+        self.tuple_values[self.slot_tuple[s] as usize * self.width() + k]
     }
 
     /// Numeric value of predictor `k` in slot `s`.
@@ -291,7 +314,7 @@ impl GroupPatterns {
         }
         leading.extend(values);
         let inputs = BatchInputs::new(self.kind, &self.spec, &leading, &mut self.dictionaries)?;
-        let mut key = Vec::with_capacity(self.stride());
+        let mut tuple = Vec::with_capacity(np);
         let sum_offsets = lists[np].value_offsets();
         for (r, &g) in group_indices.iter().enumerate() {
             if g >= total_groups {
@@ -328,12 +351,12 @@ impl GroupPatterns {
                 if np > 0 && inputs.problem(self.kind, &self.spec, row).is_some() {
                     return Err(state_error("a pattern value is not finite".into()));
                 }
-                key.clear();
-                key.push(g as u64);
+                tuple.clear();
                 if np > 0 {
-                    Self::key_of(&inputs, row, g, &mut key);
+                    Self::values_of(&inputs, row, &mut tuple);
                 }
-                let s = self.slot(&key);
+                let t = self.tuple(&tuple);
+                let s = self.slot(g, t);
                 self.sums[s].merge(&part);
             }
         }
@@ -364,20 +387,16 @@ impl GroupPatterns {
         taken.invalid = self.invalid[..n].to_vec();
         kept.skipped = self.skipped[n..].to_vec();
         kept.invalid = self.invalid[n..].to_vec();
-        taken.dictionaries = self.dictionaries.clone();
-        kept.dictionaries = self.dictionaries.clone();
-        let stride = self.stride();
-        let mut key = vec![0u64; stride];
+        // Codes and tuple ids are copied as they are, so both halves keep the same tables.
+        for half in [&mut taken, &mut kept] {
+            half.dictionaries = self.dictionaries.clone();
+            half.tuples = self.tuples.clone();
+            half.tuple_values = self.tuple_values.clone();
+        }
         for s in 0..self.sums.len() {
-            key.copy_from_slice(&self.keys[s * stride..(s + 1) * stride]);
-            let g = key[0] as usize;
-            let dst = if g < n {
-                &mut taken
-            } else {
-                key[0] = (g - n) as u64;
-                &mut kept
-            };
-            let slot = dst.slot(&key);
+            let g = self.slot_group[s] as usize;
+            let (dst, g) = if g < n { (&mut taken, g) } else { (&mut kept, g - n) };
+            let slot = dst.slot(g, self.slot_tuple[s]);
             dst.sums[slot] = self.sums[s];
         }
         *self = kept;

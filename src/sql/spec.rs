@@ -126,7 +126,7 @@ pub fn is_numeric_type(t: &DataType) -> bool {
 pub fn resolve_call(kind: FitKind, mut call: AggregateFunction, info: &SimplifyContext) -> Result<Expr> {
     let function = kind.sql_name();
     let args = &call.params.args;
-    if let Some(Expr::Literal(ScalarValue::Utf8(Some(text)), _)) = args.last() {
+    if let Some(Expr::Literal(ScalarValue::Utf8(Some(text)) | ScalarValue::Utf8View(Some(text)), _)) = args.last() {
         if FitSpec::from_literal(text).is_some() {
             return Ok(Expr::AggregateFunction(call));
         }
@@ -183,7 +183,9 @@ pub fn resolve_call(kind: FitKind, mut call: AggregateFunction, info: &SimplifyC
         interactions,
     };
     args.extend(mains);
-    args.push(lit(spec.to_literal()));
+    // A Utf8View literal: the engine expands literal arguments to one value per input row, and
+    // a repeated view costs 16 bytes per row where a repeated Utf8 string copies the whole spec.
+    args.push(lit(ScalarValue::Utf8View(Some(spec.to_literal()))));
     call.params.args = args;
     Ok(Expr::AggregateFunction(call))
 }
