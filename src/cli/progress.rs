@@ -84,7 +84,7 @@ pub async fn collect_with_progress(ctx: &SessionContext, sql: &str, show: bool) 
     let plan = df.create_physical_plan().await?;
     let leaves = scans(&plan);
     let run = super::guard::without_panics("the query", collect(plan, ctx.task_ctx()));
-    let explain = |e| naming_limit(naming_files(e, &leaves), ctx);
+    let explain = |e| naming_files(naming_limit(e, ctx), &leaves);
     if !show {
         return run.await.map_err(explain);
     }
@@ -160,8 +160,9 @@ fn naming_files(e: DataFusionError, leaves: &[Arc<dyn ExecutionPlan>]) -> DataFu
         n => format!("{}, {} and {} more files", files[0], files[1], n - 2),
     };
     match e {
-        // Memory errors keep their kind (callers tell them apart).
-        DataFusionError::ResourcesExhausted(_) => e,
+        // Memory errors keep their kind (callers tell them apart), also when they arrive
+        // wrapped by the task that hit them.
+        e if matches!(e.find_root(), DataFusionError::ResourcesExhausted(_)) => e,
         other => DataFusionError::Execution(format!("{} (while reading {reading})", other.strip_backtrace())),
     }
 }
