@@ -213,7 +213,6 @@ pub(crate) fn crude_rate(y: &[f64], offset: &[f64], w: &[f64]) -> f64 {
     sy / se
 }
 
-/// y·log(mu), with 0·log(anything) = 0.
 /// ln Γ(y+1) and y·ln y for the small whole counts that make up most rows.
 struct SmallCounts {
     log_factorial: [f64; SMALL_COUNTS],
@@ -250,6 +249,7 @@ pub(crate) fn y_log_y(y: f64) -> f64 {
     small(y).map_or_else(|| xlogy(y, y), |k| SMALL.y_log_y[k])
 }
 
+/// y·log(mu), with 0·log(anything) = 0.
 pub(crate) fn xlogy(y: f64, mu: f64) -> f64 {
     if y == 0.0 { 0.0 } else { y * mu.ln() }
 }
