@@ -298,6 +298,19 @@ impl GroupRows {
     /// Row indices of each group, in arrival order: `order[offsets[g]..offsets[g + 1]]` are
     /// group g's rows (a counting sort).
     pub fn buckets(&self) -> (Vec<usize>, Vec<usize>) {
+        let counts = self.group_offsets();
+        let mut order = vec![0usize; self.group.len()];
+        let mut next = counts.clone();
+        for (i, &g) in self.group.iter().enumerate() {
+            order[next[g as usize]] = i;
+            next[g as usize] += 1;
+        }
+        (counts, order)
+    }
+
+    /// Where each group starts when rows are laid out group by group: group g holds positions
+    /// `offsets[g]..offsets[g + 1]`.
+    fn group_offsets(&self) -> Vec<usize> {
         let groups = self.num_groups();
         let mut counts = vec![0usize; groups + 1];
         for &g in &self.group {
@@ -306,13 +319,7 @@ impl GroupRows {
         for g in 0..groups {
             counts[g + 1] += counts[g];
         }
-        let mut order = vec![0usize; self.group.len()];
-        let mut next = counts.clone();
-        for (i, &g) in self.group.iter().enumerate() {
-            order[next[g as usize]] = i;
-            next[g as usize] += 1;
-        }
-        (counts, order)
+        counts
     }
 
     /// Puts rows in a canonical order that depends only on their values, so that fits do not
@@ -388,16 +395,9 @@ impl GroupRows {
     /// The state arrays of all groups in this buffer (rows in arrival order; the final stage
     /// sorts them).
     pub fn to_state(&self) -> Result<Vec<ArrayRef>> {
-        let groups = self.num_groups();
         let total = i32::try_from(self.group.len())
             .map_err(|_| state_error(format!("{} rows exceed one state batch (2^31)", self.group.len())))?;
-        let mut counts = vec![0usize; groups + 1];
-        for &g in &self.group {
-            counts[g as usize + 1] += 1;
-        }
-        for g in 0..groups {
-            counts[g + 1] += counts[g];
-        }
+        let counts = self.group_offsets();
         debug_assert_eq!(counts.last().copied().unwrap_or(0) as i32, total);
         // Each row's position in the group-contiguous state: columns are then scattered in one
         // sequential pass each (one write cursor per group), which is far kinder to the cache
