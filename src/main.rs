@@ -4,6 +4,7 @@
 use std::process::ExitCode;
 
 use clap::Parser;
+use ratesheet::cli::hints::Hints;
 use ratesheet::cli::progress::collect_with_progress;
 use ratesheet::cli::render::{Format, Style, render};
 use ratesheet::cli::session::{SessionSettings, new_session, open_table};
@@ -50,6 +51,9 @@ struct Args {
     /// Never show the progress line (it shows only on a terminal, for statements over a second).
     #[arg(long)]
     no_progress: bool,
+    /// Never print hints (such as the one about dividing whole numbers).
+    #[arg(long)]
+    no_hints: bool,
     /// Also write the last statement's result to FILE (.csv, .json, .parquet or .xlsx).
     #[arg(long, value_name = "FILE")]
     save_to: Option<String>,
@@ -179,6 +183,7 @@ async fn main() -> ExitCode {
         (None, None) => {
             let mut shell = Shell::new(ctx, style);
             shell.progress &= !args.no_progress;
+            shell.hints.set_enabled(!args.no_hints);
             return match shell.run().await {
                 Ok(()) => ExitCode::SUCCESS,
                 Err(e) => {
@@ -189,9 +194,10 @@ async fn main() -> ExitCode {
         }
     };
     let progress = !args.no_progress && std::io::stderr().is_terminal();
+    let hints = Hints::new(!args.no_hints);
     let mut last = Vec::new();
     for (k, sql) in statements(&text).iter().enumerate() {
-        let result = collect_with_progress(&ctx, sql, progress).await;
+        let result = collect_with_progress(&ctx, sql, progress, &hints).await;
         match result.and_then(|b| render(&b, &style).map(|out| (b, out))) {
             Ok((batches, out)) => {
                 print!("{out}");

@@ -4,6 +4,7 @@
 //! renders Arrow batches. Everything statistical lives in `glm` and `sql`.
 
 pub mod guard;
+pub mod hints;
 pub mod progress;
 pub mod render;
 pub mod session;

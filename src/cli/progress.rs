@@ -19,6 +19,8 @@ use datafusion::execution::memory_pool::MemoryLimit;
 use datafusion::physical_plan::{ExecutionPlan, collect};
 use datafusion::prelude::SessionContext;
 
+use super::hints::Hints;
+
 /// Queries quicker than this show no progress line.
 pub const QUIET_PERIOD: Duration = Duration::from_secs(1);
 const TICK: Duration = Duration::from_millis(200);
@@ -78,9 +80,15 @@ pub fn progress_text(read: usize, total: Option<usize>, elapsed: Duration) -> St
 }
 
 /// Plans and runs `sql`, collecting its result; with `show`, a progress line is kept on stderr
-/// while it runs longer than [`QUIET_PERIOD`].
-pub async fn collect_with_progress(ctx: &SessionContext, sql: &str, show: bool) -> Result<Vec<RecordBatch>> {
+/// while it runs longer than [`QUIET_PERIOD`]. `hints` may print a hint about the plan first.
+pub async fn collect_with_progress(
+    ctx: &SessionContext,
+    sql: &str,
+    show: bool,
+    hints: &Hints,
+) -> Result<Vec<RecordBatch>> {
     let df = ctx.sql(sql).await?;
+    hints.after_planning(df.logical_plan());
     let plan = df.create_physical_plan().await?;
     let leaves = scans(&plan);
     let run = super::guard::without_panics("the query", collect(plan, ctx.task_ctx()));

@@ -13,6 +13,7 @@ use rustyline::error::ReadlineError;
 use rustyline::history::DefaultHistory;
 use rustyline::{Context, Editor, Helper, Highlighter, Hinter, Validator};
 
+use super::hints::Hints;
 use super::progress::collect_with_progress;
 use super::render::{Format, Style, render};
 use super::session::open_table;
@@ -60,6 +61,11 @@ pub const COMMANDS: &[Command] = &[
         name: "timing",
         args: "on|off",
         help: "show the time each statement took",
+    },
+    Command {
+        name: "hints",
+        args: "on|off",
+        help: "one-line hints about SQL that is valid but rarely meant (each shows once)",
     },
     Command {
         name: "save",
@@ -176,6 +182,8 @@ pub struct Shell {
     timing: bool,
     /// Show a progress line on stderr for long statements (only when stderr is a terminal).
     pub progress: bool,
+    /// Hints about the statements (see `hints`).
+    pub hints: Hints,
     last: Vec<RecordBatch>,
     completion_words: Arc<Mutex<Vec<String>>>,
 }
@@ -187,6 +195,7 @@ impl Shell {
             style,
             timing: true,
             progress: std::io::IsTerminal::is_terminal(&std::io::stderr()),
+            hints: Hints::new(true),
             last: Vec::new(),
             completion_words: Arc::default(),
         }
@@ -255,7 +264,8 @@ impl Shell {
         let ctx = self.ctx.clone();
         let owned = sql.to_string();
         let progress = self.progress;
-        let mut task = tokio::spawn(async move { collect_with_progress(&ctx, &owned, progress).await });
+        let hints = self.hints.clone();
+        let mut task = tokio::spawn(async move { collect_with_progress(&ctx, &owned, progress, &hints).await });
         let outcome = tokio::select! {
             r = &mut task => r,
             _ = tokio::signal::ctrl_c() => {
@@ -362,6 +372,11 @@ impl Shell {
                 Some("on") => self.timing = true,
                 Some("off") => self.timing = false,
                 _ => eprintln!("usage: {PREFIX}timing on|off"),
+            },
+            "hints" => match args.first().copied() {
+                Some("on") => self.hints.set_enabled(true),
+                Some("off") => self.hints.set_enabled(false),
+                _ => eprintln!("usage: {PREFIX}hints on|off"),
             },
             "save" => match args.first() {
                 Some(path) => match save_batches(

@@ -28,7 +28,8 @@ use super::design::{ColumnKind, Design};
 use super::error::FitError;
 use super::family::{Family, Poisson, log_factorial, y_log_y};
 use super::fit::{
-    FitInput, FitOptions, GlmFit, TermState, aux_regression_t, fit_with_row_count, set_information_criteria,
+    FitInput, FitOptions, GlmFit, TermState, aux_regression_t, fit_with_row_count, note_saturation,
+    set_information_criteria,
 };
 
 /// Per-pattern sums of the original rows. Every field is a plain sum, so sums of disjoint row
@@ -270,6 +271,7 @@ pub fn fit_poisson_patterns(pseudo: &Design, sums: &[Sums], opts: FitOptions) ->
     };
     let mut fit = fit_with_row_count(&Poisson, pseudo, input, opts, n)?;
     restate_row_statistics(&mut fit, pseudo, sums, n);
+    note_saturation(&mut fit);
     Ok(fit)
 }
 

@@ -5,8 +5,13 @@
 //! * a numeric predictor gives one column named after the predictor;
 //! * a factor gives one indicator column per non-reference level (treatment coding), named
 //!   `name=level`, in the order of the factor's level list (the reference level is skipped);
-//! * an interaction of two predictors gives the element-wise products of their columns, named
-//!   `a:b` (for example `material=pvc:age` or `material=pvc:soil=high`).
+//! * without an intercept, the first factor (in predictor order) keeps a column for every
+//!   level, its reference included, so that each of its levels has its own log-rate (the
+//!   columns span what intercept + treatment coding would span); later factors stay
+//!   treatment-coded;
+//! * an interaction of two predictors gives the element-wise products of their
+//!   treatment-coded columns, named `a:b` (for example `material=pvc:age` or
+//!   `material=pvc:soil=high`).
 //!
 //! Columns are stored contiguously (`n` values per column) so that the solver can run its
 //! inner loops over plain slices.
@@ -74,7 +79,14 @@ impl Design {
     /// Builds the model matrix for `n` rows. Every predictor must have `n` values; numeric
     /// values must be finite and factor codes in range.
     pub fn build(n: usize, spec: &DesignSpec<'_>) -> Result<Design, FitError> {
-        let blocks: Vec<Vec<Piece<'_>>> = spec.predictors.iter().map(pieces_of).collect();
+        let full = full_coded_factor(spec.intercept, spec.predictors.iter().map(Predictor::is_factor));
+        let mains: Vec<Vec<Piece<'_>>> = spec
+            .predictors
+            .iter()
+            .enumerate()
+            .map(|(k, p)| pieces_of(p, full == Some(k)))
+            .collect();
+        let blocks: Vec<Vec<Piece<'_>>> = spec.predictors.iter().map(|p| pieces_of(p, false)).collect();
         for p in &spec.predictors {
             check_predictor(n, p)?;
         }
@@ -87,7 +99,7 @@ impl Design {
             }
         }
         let width = usize::from(spec.intercept)
-            + blocks.iter().map(Vec::len).sum::<usize>()
+            + mains.iter().map(Vec::len).sum::<usize>()
             + spec
                 .interactions
                 .iter()
@@ -110,7 +122,7 @@ impl Design {
             design.names.push("intercept".to_string());
             design.kinds.push(ColumnKind::Intercept);
         }
-        for block in &blocks {
+        for block in &mains {
             for piece in block {
                 design.push_piece(piece);
             }
@@ -256,14 +268,28 @@ impl Piece<'_> {
     }
 }
 
-fn pieces_of<'a>(p: &Predictor<'a>) -> Vec<Piece<'a>> {
+impl Predictor<'_> {
+    pub fn is_factor(&self) -> bool {
+        matches!(self.values, PredictorValues::Factor(_))
+    }
+}
+
+/// The predictor (index) whose factor keeps every level: the first factor of a model without
+/// an intercept (see the module doc). `is_factor` lists the predictors in order.
+pub fn full_coded_factor(intercept: bool, mut is_factor: impl Iterator<Item = bool>) -> Option<usize> {
+    if intercept { None } else { is_factor.position(|f| f) }
+}
+
+/// The columns of one predictor: a numeric predictor's values, or a factor's indicators (all
+/// levels with `all_levels`, otherwise all but the reference).
+fn pieces_of<'a>(p: &Predictor<'a>, all_levels: bool) -> Vec<Piece<'a>> {
     match p.values {
         PredictorValues::Numeric(values) => vec![Piece::Numeric { name: p.name, values }],
         PredictorValues::Factor(f) => f
             .levels
             .iter()
             .enumerate()
-            .filter(|(code, _)| *code != f.reference)
+            .filter(|(code, _)| all_levels || *code != f.reference)
             .map(|(code, level)| Piece::Level {
                 name: p.name,
                 level,

@@ -78,12 +78,24 @@ impl TermState {
 /// Conditions found while fitting. None of them is an error; each shows in the status text.
 #[derive(Debug, Clone, PartialEq)]
 pub enum FitIssue {
-    TooFewRows { rows: usize, params: usize },
+    TooFewRows {
+        rows: usize,
+        params: usize,
+    },
     NoEvents,
-    RankDeficient { aliased: usize },
-    Boundary { terms: usize },
-    NotConverged { iterations: usize },
+    RankDeficient {
+        aliased: usize,
+    },
+    Boundary {
+        terms: usize,
+    },
+    NotConverged {
+        iterations: usize,
+    },
     NumericalBreakdown,
+    /// No residual degrees of freedom: the fit reproduces the data, so there is nothing left to
+    /// test the variance or the fit against.
+    Saturated,
 }
 
 impl std::fmt::Display for FitIssue {
@@ -108,6 +120,9 @@ impl std::fmt::Display for FitIssue {
             ),
             FitIssue::NotConverged { iterations } => write!(f, "not converged after {iterations} iterations"),
             FitIssue::NumericalBreakdown => f.write_str("numerical breakdown (weights underflowed)"),
+            FitIssue::Saturated => f.write_str(
+                "saturated (0 residual degrees of freedom: no dispersion, goodness-of-fit or overdispersion test)",
+            ),
         }
     }
 }
@@ -228,7 +243,20 @@ fn ratio(v: Option<f64>, df: Option<usize>) -> Option<f64> {
 /// Errors are returned only for invalid inputs (non-finite values, negative counts, bad
 /// exposure or weights, mismatched lengths). Every other condition gives a fit with issues.
 pub fn fit<F: Family>(family: &F, design: &Design, input: FitInput<'_>, opts: FitOptions) -> Result<GlmFit, FitError> {
-    fit_with_row_count(family, design, input, opts, design.n_rows())
+    let mut fit = fit_with_row_count(family, design, input, opts, design.n_rows())?;
+    note_saturation(&mut fit);
+    Ok(fit)
+}
+
+/// A fit with estimates and 0 residual degrees of freedom is saturated: the tests that need
+/// residual variation (dispersion, goodness of fit, overdispersion) do not exist, and the
+/// status says so. Called once the final df_resid is known (for pattern fits, that of the rows).
+pub(crate) fn note_saturation(fit: &mut GlmFit) {
+    let estimated = fit.states.contains(&TermState::Estimated);
+    if estimated && fit.stats.df_resid == Some(0) && !fit.issues.contains(&FitIssue::Saturated) {
+        fit.stats.overdispersion = None;
+        fit.issues.push(FitIssue::Saturated);
+    }
 }
 
 /// As [`fit`], with the number of original rows the design stands for (collapsed fits pass the

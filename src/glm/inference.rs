@@ -172,10 +172,12 @@ pub fn model_test(fit: &GlmFit) -> Option<ModelTest> {
     let df1 = fit.model_df();
     let (dev, null) = (fit.stats.deviance?, fit.stats.null_deviance?);
     if df1 == 0
-        || !fit
-            .issues
-            .iter()
-            .all(|i| matches!(i, FitIssue::RankDeficient { .. } | FitIssue::Boundary { .. }))
+        || !fit.issues.iter().all(|i| {
+            matches!(
+                i,
+                FitIssue::RankDeficient { .. } | FitIssue::Boundary { .. } | FitIssue::Saturated
+            )
+        })
     {
         return None;
     }

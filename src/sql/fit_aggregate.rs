@@ -23,6 +23,7 @@ use super::patterns::GroupPatterns;
 use super::result::{FitColumns, GroupResult, PredictorInfo, TermPart, fit_type};
 use super::spec::{FitKind, FitSpec, classify, is_numeric_type, resolve_call, spec_at_execution};
 use crate::glm::collapse::{Sums, fit_poisson_patterns};
+use crate::glm::design::full_coded_factor;
 use crate::glm::{
     Design, DesignSpec, FactorColumn, FitInput, Gaussian, Poisson, Predictor, PredictorValues, fit, term_table,
 };
@@ -496,14 +497,20 @@ fn fit_group(data: &GroupData<'_>, out: &mut FitColumns) -> Result<()> {
         })
         .collect();
     let parts = term_parts(settings.intercept, &factors, &spec.interactions);
+    let full = full_coded_factor(settings.intercept, factors.iter().map(Option::is_some));
     let infos: Vec<PredictorInfo> = spec
         .predictors
         .iter()
         .zip(&factors)
-        .map(|(p, f)| PredictorInfo {
+        .enumerate()
+        .map(|(k, (p, f))| PredictorInfo {
             name: p.name.clone(),
             factor: p.factor,
-            reference: f.as_ref().and_then(|f| f.levels.get(f.reference).cloned()),
+            // A factor coded with every level has no reference level.
+            reference: f
+                .as_ref()
+                .filter(|_| full != Some(k))
+                .and_then(|f| f.levels.get(f.reference).cloned()),
         })
         .collect();
     let family = if data.kind == FitKind::Linear {
@@ -570,25 +577,38 @@ fn fit_group(data: &GroupData<'_>, out: &mut FitColumns) -> Result<()> {
         }
     }
     .map_err(|e| DataFusionError::Execution(format!("{function}: {e}")))?;
-    let terms = term_table(&fitted, settings.se_type(), settings.level)
+    let mut terms = term_table(&fitted, settings.se_type(), settings.level)
         .map_err(|e| DataFusionError::Execution(e.to_string()))?;
+    let mut status = fitted.status();
+    if !spec.ratio_scale {
+        for t in &mut terms {
+            (t.rate_ratio, t.rr_low, t.rr_high) = (None, None, None);
+        }
+        status.push_str(NO_RATIO_NOTE);
+    }
     out.push(GroupResult {
         fit: Some(&fitted),
-        ..base(fitted.status(), terms)
+        ..base(status, terms)
     });
     Ok(())
 }
 
+/// Appended to the status of a least-squares fit whose response is not a logarithm: exp of its
+/// coefficients is no ratio, so the `rate_ratio`, `rr_low` and `rr_high` fields are NULL.
+const NO_RATIO_NOTE: &str =
+    "; rate ratios not reported (the response is not a natural logarithm; write ln(...) or the option response=log)";
+
 /// How each design column is built, in the core's column order (see `glm::design`).
 fn term_parts(intercept: bool, factors: &[Option<GroupFactor>], interactions: &[(usize, usize)]) -> Vec<TermPart> {
-    let pieces = |k: usize| -> Vec<(u32, Option<String>)> {
+    let full = full_coded_factor(intercept, factors.iter().map(Option::is_some));
+    let pieces = |k: usize, all_levels: bool| -> Vec<(u32, Option<String>)> {
         match &factors[k] {
             None => vec![(k as u32, None)],
             Some(f) => f
                 .levels
                 .iter()
                 .enumerate()
-                .filter(|(c, _)| *c != f.reference)
+                .filter(|(c, _)| all_levels || *c != f.reference)
                 .map(|(_, l)| (k as u32, Some(l.clone())))
                 .collect(),
         }
@@ -603,7 +623,7 @@ fn term_parts(intercept: bool, factors: &[Option<GroupFactor>], interactions: &[
         });
     }
     for k in 0..factors.len() {
-        for (p, l) in pieces(k) {
+        for (p, l) in pieces(k, full == Some(k)) {
             parts.push(TermPart {
                 predictor: Some(p),
                 level: l,
@@ -613,8 +633,8 @@ fn term_parts(intercept: bool, factors: &[Option<GroupFactor>], interactions: &[
         }
     }
     for &(a, b) in interactions {
-        for (pa, la) in pieces(a) {
-            for (pb, lb) in pieces(b) {
+        for (pa, la) in pieces(a, false) {
+            for (pb, lb) in pieces(b, false) {
                 parts.push(TermPart {
                     predictor: Some(pa),
                     level: la.clone(),
@@ -680,7 +700,9 @@ static LINEAR_FIT_DOC: LazyLock<Documentation> = LazyLock::new(|| {
         "Fits an ordinary least-squares model y = b0 + b1*x1 + ... per group, with the same result struct: \
          `z` holds t statistics (p-values and intervals from Student t on df_resid), `dispersion` the \
          residual variance, f_stat/f_p the F test against the intercept-only model. With y = ln(count + 1), \
-         exp(estimate) (the rate_ratio field) reads as a relative change in the geometric mean.",
+         exp(estimate) (the rate_ratio field) reads as a relative change in the geometric mean; for any other \
+         response the rate ratio fields are NULL and the status says why (option response=log|plain overrides \
+         the detection of ln(...)).",
         "linear_fit(y, predictor, ... [, 'options'])",
     )
     .with_argument("y", "Numeric response.")

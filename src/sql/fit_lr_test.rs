@@ -1,19 +1,34 @@
-//! `fit_lr_test(bigger, smaller)`: likelihood-ratio test of two nested fits of the same rows.
+//! `fit_lr_test(bigger, smaller)`: likelihood-ratio (or F) test of two nested fits of the same rows.
 
 use std::sync::{Arc, LazyLock};
 
-use datafusion::arrow::array::Array;
-use datafusion::arrow::datatypes::DataType;
+use datafusion::arrow::array::{Array, ArrayRef, Float64Array, StringArray, StructArray};
+use datafusion::arrow::datatypes::{DataType, Field, Fields};
 use datafusion::error::Result;
 use datafusion::logical_expr::{
     ColumnarValue, Documentation, ScalarFunctionArgs, ScalarUDF, ScalarUDFImpl, Signature, Volatility,
 };
+use statrs::distribution::{ContinuousCDF, FisherSnedecor};
 
 use super::fit_aggregate::DOC_SECTION;
-use super::scalar_util::{FitView, arg_arrays, exec_error, float_struct, float_struct_type};
+use super::result::Range;
+use super::scalar_util::{FitView, arg_arrays, exec_error};
 use crate::glm::inference::chi2_sf;
 
-const FIELDS: &[&str] = &["chi2", "df", "p_value"];
+/// The result fields: `chi2` (likelihood-ratio test) or `f` (F test, when the bigger fit has
+/// quasi standard errors) with `df` (and `df_resid`, the F test's denominator), `p_value`,
+/// `method` (`lr` or `f`) and `nesting` (`terms` when the smaller fit's terms are all in the
+/// bigger one, `assumed` when the caller vouches for it).
+const FLOAT_FIELDS: &[&str] = &["chi2", "f", "df", "df_resid", "p_value"];
+const TEXT_FIELDS: &[&str] = &["method", "nesting"];
+
+fn result_fields() -> Fields {
+    FLOAT_FIELDS
+        .iter()
+        .map(|n| Field::new(*n, DataType::Float64, true))
+        .chain(TEXT_FIELDS.iter().map(|n| Field::new(*n, DataType::Utf8, true)))
+        .collect()
+}
 
 #[derive(Debug, PartialEq, Eq, Hash)]
 pub struct FitLrTest {
@@ -34,33 +49,80 @@ impl ScalarUDFImpl for FitLrTest {
         &self.signature
     }
     fn return_type(&self, _arg_types: &[DataType]) -> Result<DataType> {
-        Ok(float_struct_type(FIELDS))
+        Ok(DataType::Struct(result_fields()))
     }
     fn invoke_with_args(&self, args: ScalarFunctionArgs) -> Result<ColumnarValue> {
         let a = arg_arrays(&args)?;
         let big = FitView::new("fit_lr_test", &a[0])?;
         let small = FitView::new("fit_lr_test", &a[1])?;
-        let mut cols = vec![Vec::with_capacity(args.number_rows); 3];
+        let mut tests = Vec::with_capacity(args.number_rows);
         for r in 0..args.number_rows {
-            let test = if big.fits.is_null(r) || small.fits.is_null(r) {
+            tests.push(if big.fits.is_null(r) || small.fits.is_null(r) {
                 None
             } else {
-                lr_row(&big, &small, r)?
-            };
-            cols[0].push(test.map(|t| t.0));
-            cols[1].push(test.map(|t| t.1));
-            cols[2].push(test.map(|t| t.2));
+                compare(&big, &small, r)?
+            });
         }
-        Ok(ColumnarValue::Array(Arc::new(float_struct(FIELDS, cols))))
+        let float = |f: fn(&Comparison) -> Option<f64>, range: Range| -> ArrayRef {
+            Arc::new(Float64Array::from_iter(
+                tests.iter().map(|t| range.report(t.as_ref().and_then(f))),
+            ))
+        };
+        let text = |f: fn(&Comparison) -> &'static str| -> ArrayRef {
+            Arc::new(StringArray::from_iter(tests.iter().map(|t| t.as_ref().map(f))))
+        };
+        let columns = vec![
+            float(|t| (t.method == Method::Lr).then_some(t.statistic), Range::NonNegative),
+            float(|t| (t.method == Method::F).then_some(t.statistic), Range::NonNegative),
+            float(|t| Some(t.df), Range::Any),
+            float(|t| t.df_resid, Range::Any),
+            float(|t| Some(t.p_value), Range::Probability),
+            text(|t| t.method.name()),
+            text(|t| t.nesting),
+        ];
+        Ok(ColumnarValue::Array(Arc::new(StructArray::new(
+            result_fields(),
+            columns,
+            None,
+        ))))
     }
     fn documentation(&self) -> Option<&Documentation> {
         Some(&DOC)
     }
 }
 
-/// chi2 = 2 (loglik_bigger - loglik_smaller) on rank_bigger - rank_smaller df (for Poisson fits
-/// this is the difference of the deviances).
-fn lr_row(big: &FitView<'_>, small: &FitView<'_>, r: usize) -> Result<Option<(f64, f64, f64)>> {
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+enum Method {
+    /// Likelihood ratio: chi2 = 2 (loglik_bigger - loglik_smaller) on df.
+    Lr,
+    /// F = (D_smaller - D_bigger) / (df · dispersion_bigger) on (df, df_resid_bigger).
+    F,
+}
+
+impl Method {
+    fn name(&self) -> &'static str {
+        match self {
+            Method::Lr => "lr",
+            Method::F => "f",
+        }
+    }
+}
+
+struct Comparison {
+    method: Method,
+    statistic: f64,
+    df: f64,
+    df_resid: Option<f64>,
+    p_value: f64,
+    nesting: &'static str,
+}
+
+/// Compares row `r` of the two fit columns. Refuses pairs that provably cannot be nested:
+/// other families, other rows (n_used, totals), a smaller fit that is not smaller (as many
+/// estimated coefficients or more) or that fits better (a smaller deviance). Nesting itself
+/// cannot be proved from two fit structs; when the term names do not nest (a linear trend
+/// against its factor, merged levels) the test is computed with `nesting` = `assumed`.
+fn compare(big: &FitView<'_>, small: &FitView<'_>, r: usize) -> Result<Option<Comparison>> {
     let same = |name: &str| match (big.fit_float(name, r), small.fit_float(name, r)) {
         (Some(x), Some(y)) => (x - y).abs() <= 1e-9 * x.abs().max(y.abs()),
         (None, None) => true,
@@ -76,46 +138,81 @@ fn lr_row(big: &FitView<'_>, small: &FitView<'_>, r: usize) -> Result<Option<(f6
             small.fit_uint("n_used", r)
         )));
     }
-    let big_terms: Vec<&str> = big.term_range(r).filter_map(|i| big.term_text("term", i)).collect();
-    if let Some(missing) = small
-        .term_range(r)
-        .filter_map(|i| small.term_text("term", i))
-        .find(|t| !big_terms.contains(t))
-    {
-        return Err(exec_error(format!(
-            "fit_lr_test: the fits are not nested: term {missing} of the second fit is not in the first; \
-             give the bigger fit first"
-        )));
-    }
-    let (Some(lb), Some(ls), Some(rb), Some(rs)) = (
+    let (Some(lb), Some(ls), Some(rb), Some(rs), Some(db), Some(ds)) = (
         big.fit_float("loglik", r),
         small.fit_float("loglik", r),
         big.fit_uint("rank", r),
         small.fit_uint("rank", r),
+        big.fit_float("deviance", r),
+        small.fit_float("deviance", r),
     ) else {
         return Ok(None);
     };
     if rb <= rs {
         return Err(exec_error(format!(
-            "fit_lr_test: the first fit must have more estimated coefficients than the second ({rb} vs {rs})"
+            "fit_lr_test: the first fit must have more estimated coefficients than the second ({rb} vs {rs}); \
+             give the bigger fit first"
         )));
     }
-    let chi2 = (2.0 * (lb - ls)).max(0.0);
+    if ds < db - 1e-9 * db.abs().max(1.0) {
+        return Err(exec_error(format!(
+            "fit_lr_test: the second fit has the smaller deviance ({ds} vs {db}), so it cannot be a special case \
+             of the first; give the bigger fit first"
+        )));
+    }
+    let big_terms: Vec<&str> = big.term_range(r).filter_map(|i| big.term_text("term", i)).collect();
+    let nested = small
+        .term_range(r)
+        .filter_map(|i| small.term_text("term", i))
+        .all(|t| big_terms.contains(&t));
+    let nesting = if nested { "terms" } else { "assumed" };
     let df = (rb - rs) as f64;
-    Ok(Some((chi2, df, chi2_sf(chi2, df))))
+    if big.fit_text("se_type", r) == Some("quasi") {
+        let (Some(dispersion), Some(df_resid)) = (big.fit_float("dispersion", r), big.fit_uint("df_resid", r)) else {
+            return Ok(None);
+        };
+        if !(dispersion > 0.0) || df_resid == 0 {
+            return Ok(None);
+        }
+        let f = (ds - db).max(0.0) / (df * dispersion);
+        let Ok(dist) = FisherSnedecor::new(df, df_resid as f64) else {
+            return Ok(None);
+        };
+        return Ok(Some(Comparison {
+            method: Method::F,
+            statistic: f,
+            df,
+            df_resid: Some(df_resid as f64),
+            p_value: dist.sf(f),
+            nesting,
+        }));
+    }
+    let chi2 = (2.0 * (lb - ls)).max(0.0);
+    Ok(Some(Comparison {
+        method: Method::Lr,
+        statistic: chi2,
+        df,
+        df_resid: None,
+        p_value: chi2_sf(chi2, df),
+        nesting,
+    }))
 }
 
 static DOC: LazyLock<Documentation> = LazyLock::new(|| {
     Documentation::builder(
         DOC_SECTION,
-        "Likelihood-ratio test of a smaller fit nested in a bigger one, fitted to the same rows: returns \
-         {chi2, df, p_value} with chi2 = 2 (loglik_bigger - loglik_smaller) (the deviance difference for \
-         Poisson fits) on the difference in estimated coefficients. Refuses fits whose terms are not nested \
-         or that used different rows.",
+        "Compares a bigger fit with a smaller one that is a special case of it, both fitted to the same rows. \
+         Returns {chi2, f, df, df_resid, p_value, method, nesting}. method 'lr': chi2 = 2 (loglik_bigger - \
+         loglik_smaller) (the deviance difference for Poisson fits) on df = the difference in estimated \
+         coefficients. method 'f' (when the bigger fit has se=quasi): f = (deviance_smaller - deviance_bigger) / \
+         (df * dispersion_bigger) on (df, df_resid of the bigger fit). nesting is 'terms' when every term of \
+         the smaller fit is in the bigger one, and 'assumed' otherwise (a linear trend against its factor, \
+         merged levels): the test is then only valid if the smaller model really is a special case. Refuses \
+         fits of other families or other rows, and a second fit with as many coefficients or a smaller deviance.",
         "fit_lr_test(bigger_fit, smaller_fit)",
     )
-    .with_argument("bigger_fit", "The fit with more terms.")
-    .with_argument("smaller_fit", "A fit of the same rows whose terms are all in the bigger fit.")
+    .with_argument("bigger_fit", "The fit with more estimated coefficients.")
+    .with_argument("smaller_fit", "A fit of the same rows whose model is a special case of the bigger one.")
     .with_sql_example(
         "SELECT fit_lr_test(poisson_fit(breaks, km_years, material), poisson_fit(breaks, km_years))['p_value'] AS p\n\
          FROM (VALUES (12, 40.0, 'iron'), (3, 30.0, 'pvc'), (9, 35.0, 'iron'), (2, 28.0, 'pvc')) AS t(breaks, km_years, material);",

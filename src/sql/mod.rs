@@ -20,10 +20,11 @@ pub mod rate_ratio_test;
 pub mod result;
 mod scalar_util;
 pub mod spec;
+pub mod unnest_keys;
 
 use datafusion::error::Result;
 use datafusion::execution::FunctionRegistry;
-use datafusion::execution::session_state::SessionState;
+use datafusion::execution::session_state::{SessionState, SessionStateBuilder};
 use datafusion::logical_expr::{AggregateUDF, ScalarUDF};
 use datafusion::prelude::SessionContext;
 
@@ -57,8 +58,15 @@ pub fn register_functions(ctx: &SessionContext) -> Result<()> {
     register_functions_on_state(&mut state)
 }
 
-/// As [`register_functions`], for a `SessionState`.
+/// As [`register_functions`], for a `SessionState`. Also installs the planning correction of
+/// [`unnest_keys`] (sort and grouping keys kept after `unnest`).
 pub fn register_functions_on_state(state: &mut SessionState) -> Result<()> {
+    let rules = unnest_keys::with_unnest_correction(state.optimizers());
+    if rules.len() != state.optimizers().len() {
+        *state = SessionStateBuilder::new_from_existing(state.clone())
+            .with_optimizer_rules(rules)
+            .build();
+    }
     for f in aggregate_functions() {
         state.register_udaf(f.into())?;
     }

@@ -5,35 +5,135 @@
 //! (a DataFusion config extension); a key given in the call wins. Unknown keys and bad values
 //! are planning errors that name the key and list what is valid.
 
+use std::any::Any;
 use std::collections::BTreeMap;
 
-use datafusion::common::config::{ConfigExtension, ConfigOptions};
-use datafusion::common::extensions_options;
+use datafusion::common::config::{ConfigEntry, ConfigExtension, ConfigOptions, ExtensionOptions};
 use datafusion::error::{DataFusionError, Result};
 use serde::{Deserialize, Serialize};
 
 use crate::glm::{FitOptions, SeType};
 
-extensions_options! {
-    /// Session-wide defaults for the fit functions (`SET ratesheet.level = 0.9`).
-    pub struct RatesheetConfig {
-        /// Confidence level of intervals, strictly between 0 and 1.
-        pub level: f64, default = 0.95
-        /// Standard errors: model, quasi, hc0 or hc1.
-        pub se: String, default = "model".to_string()
-        /// Rows with invalid values (negative count, exposure <= 0, NaN, infinite): error or skip.
-        pub invalid: String, default = "error".to_string()
-        /// Whether fits include an intercept.
-        pub intercept: bool, default = true
-        /// IRLS iteration cap.
-        pub max_iter: usize, default = 100
-        /// IRLS convergence tolerance on the relative deviance change.
-        pub tol: f64, default = 1e-12
+/// Session-wide defaults for the fit functions (`SET ratesheet.level = 0.9`).
+///
+/// `SET` validates a value with the same rule as the options string and refuses a bad one at
+/// once, naming the valid range; an unknown key lists the valid ones. `SHOW ratesheet.level`
+/// (with the information schema on) shows the current value.
+#[derive(Debug, Clone, PartialEq)]
+pub struct RatesheetConfig {
+    /// Confidence level of intervals, strictly between 0 and 1.
+    pub level: f64,
+    /// Standard errors: model, quasi, hc0 or hc1.
+    pub se: String,
+    /// Rows with invalid values (negative count, exposure <= 0, NaN, infinite): error or skip.
+    pub invalid: String,
+    /// Whether fits include an intercept.
+    pub intercept: bool,
+    /// IRLS iteration cap.
+    pub max_iter: usize,
+    /// IRLS convergence tolerance on the relative deviance change.
+    pub tol: f64,
+}
+
+impl Default for RatesheetConfig {
+    fn default() -> Self {
+        let s = FitSettings::builtin();
+        RatesheetConfig {
+            level: s.level,
+            se: s.se,
+            invalid: "error".into(),
+            intercept: s.intercept,
+            max_iter: s.max_iter,
+            tol: s.tol,
+        }
+    }
+}
+
+/// The keys `SET ratesheet.<key>` accepts, with their descriptions (also shown by `SHOW`).
+pub const SESSION_KEYS: &[(&str, &str)] = &[
+    (
+        "level",
+        "Confidence level of intervals, strictly between 0 and 1 (default 0.95).",
+    ),
+    ("se", "Standard errors: model, quasi, hc0 or hc1 (default model)."),
+    ("invalid", "Rows with invalid values: error or skip (default error)."),
+    (
+        "intercept",
+        "Whether fits include an intercept: yes or no (default yes).",
+    ),
+    ("max_iter", "IRLS iteration cap, 1 to 10000 (default 100)."),
+    ("tol", "IRLS convergence tolerance, in (0, 0.01] (default 1e-12)."),
+];
+
+impl RatesheetConfig {
+    /// The session value of `key` as option text (the form [`FitSettings`] parses).
+    fn value(&self, key: &str) -> Option<String> {
+        Some(match key {
+            "level" => self.level.to_string(),
+            "se" => self.se.clone(),
+            "invalid" => self.invalid.clone(),
+            "intercept" => if self.intercept { "yes" } else { "no" }.to_string(),
+            "max_iter" => self.max_iter.to_string(),
+            "tol" => self.tol.to_string(),
+            _ => return None,
+        })
     }
 }
 
 impl ConfigExtension for RatesheetConfig {
     const PREFIX: &'static str = "ratesheet";
+}
+
+impl ExtensionOptions for RatesheetConfig {
+    fn as_any(&self) -> &dyn Any {
+        self
+    }
+
+    fn as_any_mut(&mut self) -> &mut dyn Any {
+        self
+    }
+
+    fn cloned(&self) -> Box<dyn ExtensionOptions> {
+        Box::new(self.clone())
+    }
+
+    /// Validates with the options-string rule and stores the value in its canonical form.
+    fn set(&mut self, key: &str, value: &str) -> Result<()> {
+        if !SESSION_KEYS.iter().any(|(k, _)| *k == key) {
+            let keys: Vec<String> = SESSION_KEYS.iter().map(|(k, _)| format!("ratesheet.{k}")).collect();
+            return Err(plan_error(format!(
+                "SET ratesheet.{key}: unknown setting; valid settings: {}",
+                keys.join(", ")
+            )));
+        }
+        let mut checked = FitSettings::builtin();
+        checked.apply(key, value.trim(), &format!("SET ratesheet.{key}"))?;
+        match key {
+            "level" => self.level = checked.level,
+            "se" => self.se = checked.se,
+            "invalid" => {
+                self.invalid = match checked.invalid {
+                    InvalidRows::Error => "error".into(),
+                    InvalidRows::Skip => "skip".into(),
+                }
+            }
+            "intercept" => self.intercept = checked.intercept,
+            "max_iter" => self.max_iter = checked.max_iter,
+            _ => self.tol = checked.tol,
+        }
+        Ok(())
+    }
+
+    fn entries(&self) -> Vec<ConfigEntry> {
+        SESSION_KEYS
+            .iter()
+            .map(|(key, description)| ConfigEntry {
+                key: format!("{}.{key}", Self::PREFIX),
+                value: self.value(key),
+                description,
+            })
+            .collect()
+    }
 }
 
 /// The keys an options string may use; `ref.<predictor>` names a factor's reference level.
@@ -44,6 +144,7 @@ pub const OPTION_KEYS: &[&str] = &[
     "intercept",
     "max_iter",
     "tol",
+    "response",
     "ref.<predictor>",
 ];
 
@@ -52,6 +153,15 @@ pub const OPTION_KEYS: &[&str] = &[
 pub enum InvalidRows {
     Error,
     Skip,
+}
+
+/// How the response of a least-squares fit is to be read (option `response`).
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+pub enum ResponseScale {
+    /// A natural logarithm: exp(coefficient) is a ratio (of geometric means).
+    Log,
+    /// Anything else: exp(coefficient) means nothing, and no ratio is reported.
+    Plain,
 }
 
 /// Fully resolved settings of one fit call.
@@ -63,42 +173,54 @@ pub struct FitSettings {
     pub intercept: bool,
     pub max_iter: usize,
     pub tol: f64,
+    /// The `response` option as given; `None` when the call leaves it to the response
+    /// expression (see `spec::resolve_call`).
+    pub response: Option<ResponseScale>,
     /// Reference level per factor predictor name.
     pub references: BTreeMap<String, String>,
 }
 
 impl FitSettings {
-    /// Defaults of the session (or the built-in defaults when the extension is absent).
-    pub fn from_session(config: &ConfigOptions) -> Result<FitSettings> {
-        let defaults = config.extensions.get::<RatesheetConfig>().cloned().unwrap_or_default();
-        let mut settings = FitSettings {
+    /// The built-in defaults.
+    pub fn builtin() -> FitSettings {
+        FitSettings {
             level: 0.95,
             se: "model".into(),
             invalid: InvalidRows::Error,
-            intercept: defaults.intercept,
+            intercept: true,
             max_iter: 100,
             tol: 1e-12,
+            response: None,
             references: BTreeMap::new(),
-        };
-        settings.apply("level", &defaults.level.to_string(), "SET ratesheet.level")?;
-        settings.apply("se", &defaults.se, "SET ratesheet.se")?;
-        settings.apply("invalid", &defaults.invalid, "SET ratesheet.invalid")?;
-        settings.apply("max_iter", &defaults.max_iter.to_string(), "SET ratesheet.max_iter")?;
-        settings.apply("tol", &defaults.tol.to_string(), "SET ratesheet.tol")?;
+        }
+    }
+
+    /// The settings of one call: built-in defaults, then the session's defaults for every key
+    /// the call does not give, then the call's own options (`options`, the trailing string).
+    /// A key given in the call wins, so a session default never breaks a call that overrides
+    /// it. `function` names the SQL function in error messages.
+    pub fn resolve(config: &ConfigOptions, options: &str, function: &str) -> Result<FitSettings> {
+        let given = parse_pairs(options, function)?;
+        let mut settings = FitSettings::builtin();
+        if let Some(session) = config.extensions.get::<RatesheetConfig>() {
+            for (key, _) in SESSION_KEYS {
+                if !given.iter().any(|(k, _)| k == key) {
+                    let value = session.value(key).unwrap_or_default();
+                    settings.apply(key, &value, &format!("SET ratesheet.{key}"))?;
+                }
+            }
+        }
+        for (key, value) in &given {
+            settings.apply(key, value, function)?;
+        }
         Ok(settings)
     }
 
     /// Applies an options string on top of these settings. `function` names the SQL function in
     /// error messages.
     pub fn apply_string(&mut self, options: &str, function: &str) -> Result<()> {
-        for item in options.split(',').map(str::trim).filter(|s| !s.is_empty()) {
-            let Some((key, value)) = item.split_once('=') else {
-                return Err(plan_error(format!(
-                    "{function}: option '{item}' is not of the form key=value; valid keys: {}",
-                    OPTION_KEYS.join(", ")
-                )));
-            };
-            self.apply(key.trim(), value.trim(), function)?;
+        for (key, value) in parse_pairs(options, function)? {
+            self.apply(&key, &value, function)?;
         }
         Ok(())
     }
@@ -149,6 +271,13 @@ impl FitSettings {
                 }
                 self.tol = v;
             }
+            "response" => {
+                self.response = Some(match value.to_ascii_lowercase().as_str() {
+                    "log" => ResponseScale::Log,
+                    "plain" => ResponseScale::Plain,
+                    _ => return Err(bad("valid values are log (the response is a natural logarithm), plain")),
+                })
+            }
             _ => {
                 if let Some(predictor) = key.strip_prefix("ref.") {
                     if predictor.is_empty() || value.is_empty() {
@@ -178,6 +307,22 @@ impl FitSettings {
     }
 }
 
+/// The `key=value` pairs of an options string, in order.
+fn parse_pairs(options: &str, function: &str) -> Result<Vec<(String, String)>> {
+    options
+        .split(',')
+        .map(str::trim)
+        .filter(|s| !s.is_empty())
+        .map(|item| match item.split_once('=') {
+            Some((key, value)) => Ok((key.trim().to_string(), value.trim().to_string())),
+            None => Err(plan_error(format!(
+                "{function}: option '{item}' is not of the form key=value; valid keys: {}",
+                OPTION_KEYS.join(", ")
+            ))),
+        })
+        .collect()
+}
+
 pub(crate) fn plan_error(msg: String) -> DataFusionError {
     DataFusionError::Plan(msg)
 }
@@ -186,22 +331,53 @@ pub(crate) fn plan_error(msg: String) -> DataFusionError {
 mod tests {
     use super::*;
 
-    #[test]
-    fn call_options_override_session_defaults() {
+    fn session() -> ConfigOptions {
         let mut config = ConfigOptions::new();
         config.extensions.insert(RatesheetConfig::default());
+        config
+    }
+
+    #[test]
+    fn call_options_override_session_defaults() {
+        let mut config = session();
         config.set("ratesheet.level", "0.9").unwrap();
-        let mut s = FitSettings::from_session(&config).unwrap();
-        assert_eq!(s.level, 0.9);
-        s.apply_string("se=HC1, level=0.99, ref.material=iron, invalid=skip", "poisson_fit")
-            .unwrap();
+        config.set("ratesheet.se", "hc0").unwrap();
+        assert_eq!(FitSettings::resolve(&config, "", "poisson_fit").unwrap().level, 0.9);
+        let s = FitSettings::resolve(
+            &config,
+            "se=HC1, level=0.99, ref.material=iron, invalid=skip",
+            "poisson_fit",
+        )
+        .unwrap();
         assert_eq!((s.level, s.se.as_str(), s.invalid), (0.99, "hc1", InvalidRows::Skip));
         assert_eq!(s.references["material"], "iron");
     }
 
     #[test]
+    fn a_bad_session_value_is_refused_when_set_and_leaves_the_old_one() {
+        let mut config = session();
+        let e = config.set("ratesheet.level", "95").unwrap_err().to_string();
+        assert!(
+            e.contains("SET ratesheet.level: level=95 is not valid") && e.contains("strictly between 0 and 1"),
+            "{e}"
+        );
+        assert_eq!(config.extensions.get::<RatesheetConfig>().unwrap().level, 0.95);
+        let e = config.set("ratesheet.levle", "0.9").unwrap_err().to_string();
+        assert!(
+            e.contains("unknown setting") && e.contains("ratesheet.level, ratesheet.se"),
+            "{e}"
+        );
+        config.set("ratesheet.intercept", "false").unwrap();
+        config.set("ratesheet.se", "HC1").unwrap();
+        let entries = config.entries();
+        let value = |k: &str| entries.iter().find(|e| e.key == k).and_then(|e| e.value.clone());
+        assert_eq!(value("ratesheet.intercept").as_deref(), Some("no"));
+        assert_eq!(value("ratesheet.se").as_deref(), Some("hc1"));
+    }
+
+    #[test]
     fn bad_options_name_the_key_and_the_valid_choices() {
-        let mut s = FitSettings::from_session(&ConfigOptions::new()).unwrap();
+        let mut s = FitSettings::builtin();
         let e = s.apply_string("colour=red", "poisson_fit").unwrap_err().to_string();
         assert!(e.contains("unknown option 'colour'") && e.contains("level, se"), "{e}");
         let e = s.apply_string("se=robust", "poisson_fit").unwrap_err().to_string();

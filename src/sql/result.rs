@@ -58,47 +58,72 @@ fn list_of(fields: &Fields) -> DataType {
     DataType::List(Arc::new(Field::new("item", DataType::Struct(fields.clone()), true)))
 }
 
-/// Names and types of the fit-level fields, in order.
-const FIT_FIELDS: &[(&str, DataType)] = &[
-    ("status", DataType::Utf8),
-    ("family", DataType::Utf8),
-    ("n_used", DataType::UInt64),
-    ("n_skipped", DataType::UInt64),
-    ("n_invalid", DataType::UInt64),
-    ("n_params", DataType::UInt64),
-    ("rank", DataType::UInt64),
-    ("df_resid", DataType::UInt64),
-    ("converged", DataType::Boolean),
-    ("iterations", DataType::UInt64),
-    ("deviance", DataType::Float64),
-    ("null_deviance", DataType::Float64),
-    ("pearson_chi2", DataType::Float64),
-    ("dispersion", DataType::Float64),
-    ("deviance_df", DataType::Float64),
-    ("deviance_p", DataType::Float64),
-    ("pearson_p", DataType::Float64),
-    ("lr_chi2", DataType::Float64),
-    ("lr_df", DataType::UInt64),
-    ("lr_p", DataType::Float64),
-    ("f_stat", DataType::Float64),
-    ("f_p", DataType::Float64),
-    ("overdispersion_z", DataType::Float64),
-    ("overdispersion_p", DataType::Float64),
-    ("loglik", DataType::Float64),
-    ("aic", DataType::Float64),
-    ("bic", DataType::Float64),
-    ("total_count", DataType::Float64),
-    ("total_exposure", DataType::Float64),
-    ("crude_rate", DataType::Float64),
-    ("se_type", DataType::Utf8),
-    ("level", DataType::Float64),
+/// The values a reported number can take. A statistic whose formula cannot leave its range
+/// (a deviance is a sum of non-negative terms, a p-value a probability) is brought back into
+/// it at the exit point: what lies outside is rounding residue (a saturated fit's deviance of
+/// -2.4e-14), and the nearest value inside the range is the answer.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Range {
+    Any,
+    NonNegative,
+    Probability,
+}
+
+impl Range {
+    /// `v` brought into the range; non-finite values become NULL and -0.0 becomes 0.
+    pub fn report(self, v: Option<f64>) -> Option<f64> {
+        let v = v.filter(|x| x.is_finite())?;
+        Some(
+            match self {
+                Range::Any => v,
+                Range::NonNegative => v.max(0.0),
+                Range::Probability => v.clamp(0.0, 1.0),
+            } + 0.0,
+        )
+    }
+}
+
+/// Names, types and ranges of the fit-level fields, in order.
+const FIT_FIELDS: &[(&str, DataType, Range)] = &[
+    ("status", DataType::Utf8, Range::Any),
+    ("family", DataType::Utf8, Range::Any),
+    ("n_used", DataType::UInt64, Range::Any),
+    ("n_skipped", DataType::UInt64, Range::Any),
+    ("n_invalid", DataType::UInt64, Range::Any),
+    ("n_params", DataType::UInt64, Range::Any),
+    ("rank", DataType::UInt64, Range::Any),
+    ("df_resid", DataType::UInt64, Range::Any),
+    ("converged", DataType::Boolean, Range::Any),
+    ("iterations", DataType::UInt64, Range::Any),
+    ("deviance", DataType::Float64, Range::NonNegative),
+    ("null_deviance", DataType::Float64, Range::NonNegative),
+    ("pearson_chi2", DataType::Float64, Range::NonNegative),
+    ("dispersion", DataType::Float64, Range::NonNegative),
+    ("deviance_df", DataType::Float64, Range::NonNegative),
+    ("deviance_p", DataType::Float64, Range::Probability),
+    ("pearson_p", DataType::Float64, Range::Probability),
+    ("lr_chi2", DataType::Float64, Range::NonNegative),
+    ("lr_df", DataType::UInt64, Range::Any),
+    ("lr_p", DataType::Float64, Range::Probability),
+    ("f_stat", DataType::Float64, Range::NonNegative),
+    ("f_p", DataType::Float64, Range::Probability),
+    ("overdispersion_z", DataType::Float64, Range::Any),
+    ("overdispersion_p", DataType::Float64, Range::Probability),
+    ("loglik", DataType::Float64, Range::Any),
+    ("aic", DataType::Float64, Range::Any),
+    ("bic", DataType::Float64, Range::Any),
+    ("total_count", DataType::Float64, Range::NonNegative),
+    ("total_exposure", DataType::Float64, Range::NonNegative),
+    ("crude_rate", DataType::Float64, Range::NonNegative),
+    ("se_type", DataType::Utf8, Range::Any),
+    ("level", DataType::Float64, Range::Probability),
 ];
 
 /// The full struct type returned by `poisson_fit`, `poisson_count_fit` and `linear_fit`.
 pub static FIT_FIELDS_ALL: LazyLock<Fields> = LazyLock::new(|| {
     let mut fields: Vec<Field> = FIT_FIELDS
         .iter()
-        .map(|(n, t)| Field::new(*n, t.clone(), true))
+        .map(|(n, t, _)| Field::new(*n, t.clone(), true))
         .collect();
     fields.push(Field::new("terms", list_of(&TERM_FIELDS), true));
     fields.push(Field::new("predictors", list_of(&PREDICTOR_FIELDS), true));
@@ -162,30 +187,24 @@ pub struct FitColumns {
     design_offsets: Vec<i32>,
 }
 
-/// A fit-level value before it is placed in its typed column.
-/// The one exit point for numbers: non-finite values become NULL and -0.0 becomes 0.
-fn reportable(v: Option<f64>) -> Option<f64> {
-    v.filter(|x| x.is_finite()).map(|x| x + 0.0)
-}
-
 /// A term row with only reportable numbers; an estimate lost that way is flagged, never a
 /// silent NULL.
 fn reportable_term(mut t: TermRow) -> TermRow {
     if t.flag.is_none() && t.estimate.is_some_and(|e| !e.is_finite()) {
         t.flag = Some("not estimated");
     }
-    for v in [
-        &mut t.estimate,
-        &mut t.std_error,
-        &mut t.statistic,
-        &mut t.p_value,
-        &mut t.ci_low,
-        &mut t.ci_high,
-        &mut t.rate_ratio,
-        &mut t.rr_low,
-        &mut t.rr_high,
+    for (v, range) in [
+        (&mut t.estimate, Range::Any),
+        (&mut t.std_error, Range::NonNegative),
+        (&mut t.statistic, Range::Any),
+        (&mut t.p_value, Range::Probability),
+        (&mut t.ci_low, Range::Any),
+        (&mut t.ci_high, Range::Any),
+        (&mut t.rate_ratio, Range::NonNegative),
+        (&mut t.rr_low, Range::NonNegative),
+        (&mut t.rr_high, Range::NonNegative),
     ] {
-        *v = reportable(*v);
+        *v = range.report(*v);
     }
     t
 }
@@ -273,7 +292,7 @@ impl FitColumns {
             match v {
                 Value::Text(v) => self.text[i].push(v),
                 Value::UInt(v) => self.uints[i].push(v),
-                Value::Float(v) => self.floats[i].push(reportable(v)),
+                Value::Float(v) => self.floats[i].push(FIT_FIELDS[i].2.report(v)),
                 Value::Bool(v) => self.bools[i].push(v),
             }
         }
@@ -289,7 +308,7 @@ impl FitColumns {
     pub fn finish(self) -> StructArray {
         let rows = self.term_offsets.len() - 1;
         let mut arrays: Vec<ArrayRef> = Vec::new();
-        for (i, (_, t)) in FIT_FIELDS.iter().enumerate() {
+        for (i, (_, t, _)) in FIT_FIELDS.iter().enumerate() {
             let take = |v: &Vec<Vec<Option<String>>>| v.get(i).cloned().unwrap_or_else(|| vec![None; rows]);
             arrays.push(match t {
                 DataType::Utf8 => Arc::new(StringArray::from(take(&self.text))),

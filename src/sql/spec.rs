@@ -12,7 +12,6 @@ use std::sync::Arc;
 
 use datafusion::arrow::datatypes::DataType;
 use datafusion::common::ScalarValue;
-use datafusion::common::config::ConfigOptions;
 use datafusion::error::Result;
 use datafusion::logical_expr::expr::{AggregateFunction, ScalarFunction};
 use datafusion::logical_expr::simplify::SimplifyContext;
@@ -23,7 +22,7 @@ use serde::{Deserialize, Serialize};
 use super::options::{FitSettings, plan_error};
 
 /// Marker that identifies a resolved fit spec literal.
-const SPEC_TAG: &str = "ratesheet-fit-spec/1";
+const SPEC_TAG: &str = "ratesheet-fit-spec/2";
 
 /// Which fit function a call is, and so how many leading (response) arguments it has.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Hash)]
@@ -79,6 +78,10 @@ pub struct FitSpec {
     pub predictors: Vec<PredictorSpec>,
     /// Pairs of predictor indices.
     pub interactions: Vec<(usize, usize)>,
+    /// Whether exp(coefficient) is a ratio: always for Poisson fits (log link); for
+    /// `linear_fit` only when the response is a natural logarithm (`ln(...)`, or the option
+    /// `response=log`).
+    pub ratio_scale: bool,
 }
 
 impl FitSpec {
@@ -86,9 +89,10 @@ impl FitSpec {
     pub fn empty() -> Result<FitSpec> {
         Ok(FitSpec {
             tag: SPEC_TAG.to_string(),
-            settings: FitSettings::from_session(&ConfigOptions::new())?,
+            settings: FitSettings::builtin(),
             predictors: Vec::new(),
             interactions: Vec::new(),
+            ratio_scale: true,
         })
     }
 
@@ -142,8 +146,7 @@ pub fn resolve_call(kind: FitKind, mut call: AggregateFunction, info: &SimplifyC
         },
         _ => String::new(),
     };
-    let mut settings = FitSettings::from_session(info.config_options())?;
-    settings.apply_string(&options, function)?;
+    let settings = FitSettings::resolve(info.config_options(), &options, function)?;
     let mut mains: Vec<Expr> = Vec::new();
     let mut predictors: Vec<PredictorSpec> = Vec::new();
     let mut pending: Vec<(String, String)> = Vec::new();
@@ -176,11 +179,13 @@ pub fn resolve_call(kind: FitKind, mut call: AggregateFunction, info: &SimplifyC
         }
     }
     check_references(function, &settings, &predictors)?;
+    let ratio_scale = ratio_scale(kind, &settings, || args.first().is_some_and(is_natural_log))?;
     let spec = FitSpec {
         tag: SPEC_TAG.to_string(),
         settings,
         predictors,
         interactions,
+        ratio_scale,
     };
     args.extend(mains);
     // A Utf8View literal: the engine expands literal arguments to one value per input row, and
@@ -210,6 +215,30 @@ pub fn check_references(function: &str, settings: &FitSettings, predictors: &[Pr
         }
     }
     Ok(())
+}
+
+/// Whether a fit's exp(coefficient) is a ratio (see [`FitSpec::ratio_scale`]); `log_response`
+/// tells whether the response expression is `ln(...)`.
+fn ratio_scale(kind: FitKind, settings: &FitSettings, log_response: impl FnOnce() -> bool) -> Result<bool> {
+    use super::options::ResponseScale;
+    match (kind, settings.response) {
+        (FitKind::Linear, Some(scale)) => Ok(scale == ResponseScale::Log),
+        (FitKind::Linear, None) => Ok(log_response()),
+        (_, None) => Ok(true),
+        (_, Some(_)) => Err(plan_error(format!(
+            "{}: the option response applies to linear_fit only (Poisson fits are on the log scale already)",
+            kind.sql_name()
+        ))),
+    }
+}
+
+/// `ln(...)` of an expression, under any casts the planner inserted.
+fn is_natural_log(e: &Expr) -> bool {
+    match strip_casts(e) {
+        Expr::ScalarFunction(f) => f.func.name() == "ln",
+        Expr::Alias(a) => is_natural_log(&a.expr),
+        _ => false,
+    }
 }
 
 fn interaction_parts(e: &Expr) -> Option<(&Expr, &Expr)> {
@@ -304,7 +333,7 @@ pub fn spec_at_execution(
     if let Some(spec) = last_text.as_deref().and_then(FitSpec::from_literal) {
         return Ok((spec, exprs.len() - 1));
     }
-    let mut settings = FitSettings::from_session(&ConfigOptions::new())?;
+    let mut settings = FitSettings::builtin();
     let mut end = exprs.len();
     if let Some(text) = &last_text {
         if exprs.len() > kind.leading() {
@@ -324,12 +353,21 @@ pub fn spec_at_execution(
         predictors.push(PredictorSpec { name, factor });
     }
     check_references(function, &settings, &predictors)?;
+    let ratio_scale = ratio_scale(kind, &settings, || {
+        use datafusion::physical_expr::ScalarFunctionExpr;
+        let Some(mut e) = exprs.first() else { return false };
+        while let Some(c) = e.downcast_ref::<datafusion::physical_expr::expressions::CastExpr>() {
+            e = c.expr();
+        }
+        e.downcast_ref::<ScalarFunctionExpr>().is_some_and(|f| f.name() == "ln")
+    })?;
     Ok((
         FitSpec {
             tag: SPEC_TAG.to_string(),
             settings,
             predictors,
             interactions: Vec::new(),
+            ratio_scale,
         },
         end,
     ))

@@ -272,3 +272,29 @@ fn workbooks_open_as_tables_and_bad_headers_are_refused() {
     }
     std::fs::remove_dir_all(&dir).ok();
 }
+
+/// Dividing two whole-number expressions prints a hint once per session (SQL semantics stay:
+/// the result is 10), not for a decimal division, and never with --no-hints.
+#[test]
+fn whole_number_division_gets_a_hint_once() {
+    let sql = "SELECT 1000 * SUM(c) / SUM(p) AS rate FROM (VALUES (10, 1000), (13, 1251)) AS t(c, p); \
+               SELECT 1000 * SUM(c) / SUM(p) AS again FROM (VALUES (10, 1000), (13, 1251)) AS t(c, p);";
+    let (code, out, err) = run(&["-e", sql, "--format", "csv"]);
+    assert_eq!(code, 0, "{err}");
+    assert_eq!(out, "rate\n10\nagain\n10\n");
+    assert_eq!(err.matches("hint:").count(), 1, "{err}");
+    assert!(
+        err.contains("hint: (1000 * sum(t.c)) / sum(t.p) divides whole numbers"),
+        "{err}"
+    );
+    let (_, _, err) = run(&["-e", sql, "--format", "csv", "--no-hints"]);
+    assert!(!err.contains("hint:"), "{err}");
+    let (_, out, err) = run(&[
+        "-e",
+        "SELECT 1000.0 * SUM(c) / SUM(p) AS rate FROM (VALUES (10, 1000), (13, 1251)) AS t(c, p);",
+        "--format",
+        "csv",
+    ]);
+    assert!(out.starts_with("rate\n10.2176"), "{out}");
+    assert!(!err.contains("hint:"), "{err}");
+}

@@ -184,7 +184,7 @@ async fn try_damaged(path: &str) -> Result<Outcome, String> {
     }
     let sql = "SELECT COUNT(*), SUM(breaks), poisson_fit(breaks, km_years, material)['status'] FROM damaged";
     let run = tokio::spawn(async move {
-        ratesheet::cli::progress::collect_with_progress(&ctx, sql, false)
+        ratesheet::cli::progress::collect_with_progress(&ctx, sql, false, &ratesheet::cli::hints::Hints::new(false))
             .await
             .map_err(|e| e.to_string())
     });

@@ -3,6 +3,7 @@
 
 use std::time::{Duration, Instant};
 
+use ratesheet::cli::hints::Hints;
 use ratesheet::cli::progress::collect_with_progress;
 use ratesheet::cli::session::{SessionSettings, new_session};
 
@@ -59,7 +60,8 @@ async fn two_hundred_cancelled_queries_return_the_memory_pool_to_zero() {
     let mut held_when_cancelled = 0;
     for cycle in 0..200u64 {
         let task_ctx = ctx.clone();
-        let task = tokio::spawn(async move { collect_with_progress(&task_ctx, endless, false).await });
+        let task =
+            tokio::spawn(async move { collect_with_progress(&task_ctx, endless, false, &Hints::new(false)).await });
         tokio::time::sleep(Duration::from_millis(cycle * 37 % 61)).await;
         if pool.reserved() > 0 {
             held_when_cancelled += 1;
@@ -84,9 +86,14 @@ async fn two_hundred_cancelled_queries_return_the_memory_pool_to_zero() {
         held_when_cancelled >= 100,
         "only {held_when_cancelled} cycles were cancelled while holding memory"
     );
-    let batches = collect_with_progress(&ctx, "SELECT SUM(v) AS s FROM generate_series(1, 1000) t(v)", false)
-        .await
-        .unwrap();
+    let batches = collect_with_progress(
+        &ctx,
+        "SELECT SUM(v) AS s FROM generate_series(1, 1000) t(v)",
+        false,
+        &Hints::new(false),
+    )
+    .await
+    .unwrap();
     let text = datafusion::arrow::util::pretty::pretty_format_batches(&batches)
         .unwrap()
         .to_string();

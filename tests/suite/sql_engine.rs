@@ -455,3 +455,86 @@ async fn pattern_sums_and_row_buffers_give_the_same_fits() {
         }
     }
 }
+
+/// Queries after `unnest` whose answers depend on every key: (ORDER BY, GROUP BY, join) with
+/// the right answer written out. No ratesheet function is involved.
+const AFTER_UNNEST: &[(&str, &str)] = &[
+    ("SELECT k, v FROM u ORDER BY k, v", "1 1|1 2|1 3|2 4|2 5"),
+    (
+        "SELECT k, COUNT(*) AS c FROM u GROUP BY k, v ORDER BY k, c",
+        "1 1|1 1|1 1|2 1|2 1",
+    ),
+    (
+        "SELECT COUNT(*) AS c FROM u JOIN (VALUES (1), (2)) AS keys(k) ON u.k = keys.k",
+        "5",
+    ),
+];
+
+const LISTED: &str = "CREATE VIEW u AS SELECT k, unnest(vs) AS v FROM \
+    (SELECT k, array_agg(v) AS vs FROM (VALUES (1, 3), (1, 1), (1, 2), (2, 5), (2, 4)) AS t(k, v) GROUP BY k)";
+
+async fn rows_as_text(ctx: &SessionContext, sql: &str) -> String {
+    let batches = collect(ctx, sql).await;
+    let mut rows = Vec::new();
+    for b in &batches {
+        for r in 0..b.num_rows() {
+            let cells: Vec<String> = b
+                .columns()
+                .iter()
+                .map(|c| datafusion::arrow::util::display::array_value_to_string(c, r).unwrap())
+                .collect();
+            rows.push(cells.join(" "));
+        }
+    }
+    rows.join("|")
+}
+
+/// With ratesheet's session correction (`sql::unnest_keys`), every key applies after `unnest`.
+#[tokio::test]
+async fn keys_apply_after_unnest_in_a_ratesheet_session() {
+    let ctx = context(2);
+    collect(&ctx, LISTED).await;
+    for (sql, expected) in AFTER_UNNEST {
+        assert_eq!(&rows_as_text(&ctx, sql).await, expected, "{sql}");
+    }
+}
+
+/// Canary: plain DataFusion 55 still drops these keys (its `Unnest` keeps its input's
+/// uniqueness). When this test fails, DataFusion has fixed it: remove `sql::unnest_keys`
+/// (DEVELOPERS.md says so too).
+#[tokio::test]
+async fn plain_datafusion_still_drops_keys_after_unnest() {
+    let ctx = SessionContext::new_with_config(SessionConfig::new().with_target_partitions(2));
+    collect(&ctx, LISTED).await;
+    let mut wrong = 0;
+    for (sql, expected) in AFTER_UNNEST {
+        if &rows_as_text(&ctx, sql).await != expected {
+            wrong += 1;
+        }
+    }
+    assert_eq!(wrong, AFTER_UNNEST.len(), "DataFusion now keeps some keys after unnest");
+}
+
+/// The correction sits before every rule that reads functional dependencies, in the default
+/// rule list of this DataFusion version, and is installed once however often functions are
+/// registered.
+#[test]
+fn the_unnest_correction_precedes_every_rule_that_reads_dependencies() {
+    use ratesheet::sql::unnest_keys::{DEPENDENCY_READERS, RULE_NAME};
+    let ctx = SessionContext::new();
+    ratesheet::register_functions(&ctx).unwrap();
+    ratesheet::register_functions(&ctx).unwrap();
+    let state = ctx.state();
+    let names: Vec<&str> = state.optimizers().iter().map(|r| r.name()).collect();
+    for reader in DEPENDENCY_READERS {
+        let at = names
+            .iter()
+            .position(|n| n == reader)
+            .unwrap_or_else(|| panic!("{reader} not in {names:?}"));
+        assert_eq!(names[at - 1], RULE_NAME, "{names:?}");
+    }
+    assert_eq!(
+        names.iter().filter(|n| **n == RULE_NAME).count(),
+        DEPENDENCY_READERS.len()
+    );
+}
