@@ -12,8 +12,9 @@
 
 use statrs::distribution::{Beta, Binomial, Continuous, ContinuousCDF, Discrete, DiscreteCDF, Gamma};
 
+use super::distributions::{normal_quantile, normal_sf};
 use super::error::FitError;
-use super::inference::{check_level, normal_quantile, normal_sf};
+use super::inference::check_level;
 
 /// A rate with its interval.
 #[derive(Debug, Clone, Copy, PartialEq)]

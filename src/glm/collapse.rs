@@ -26,11 +26,10 @@ use nalgebra::DMatrix;
 
 use super::design::{ColumnKind, Design};
 use super::error::FitError;
-use super::family::{Family, Poisson, log_factorial, y_log_y};
-use super::fit::{
-    FitInput, FitOptions, GlmFit, TermState, aux_regression_t, fit_with_row_count, note_saturation,
-    set_information_criteria,
-};
+use super::family::{Family, FamilyTests, Poisson, log_factorial, y_log_y};
+use super::fit::{FitInput, GlmFit, TermState, fit_with_row_count, note_saturation, set_information_criteria};
+use super::irls::FitOptions;
+use super::overdispersion::aux_regression_t;
 
 /// Per-pattern sums of the original rows. Every field is a plain sum, so sums of disjoint row
 /// sets merge by addition ([`Sums::merge`]).
@@ -293,6 +292,8 @@ fn restate_row_statistics(fit: &mut GlmFit, pseudo: &Design, sums: &[Sums], n: u
         fit.stats.pearson_chi2 = Some(sum_over(&|s, r| s.pearson(r)));
     }
     set_information_criteria(&mut fit.stats, &Poisson, sum_over(&|s, r| s.loglik(r)));
+    // The pattern-level tests mean nothing for the rows; the row-level ones follow.
+    fit.stats.extra = FamilyTests::default();
 
     if fit.states.contains(&TermState::Estimated) {
         let p = pseudo.n_columns();
@@ -311,7 +312,7 @@ fn restate_row_statistics(fit: &mut GlmFit, pseudo: &Design, sums: &[Sums], n: u
         let szx = sum_over(&|s, r| s.squared_residuals(r) - s.y);
         let sxx = sum_over(&|s, r| r * r * s.ee);
         let szz = sum_over(&|s, r| s.squared_aux_response(r));
-        fit.stats.overdispersion = if n >= 2 {
+        fit.stats.extra.overdispersion = if n >= 2 {
             aux_regression_t(szx, sxx, szz, n)
         } else {
             None

@@ -66,6 +66,25 @@ pub struct DesignSpec<'a> {
     pub interactions: Vec<(usize, usize)>,
 }
 
+/// One predictor's part in a design column: its index and, for a factor, the level.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct SourcePart {
+    pub predictor: usize,
+    pub level: Option<String>,
+}
+
+/// How a design column was built from the predictors (what scoring needs to rebuild it).
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub enum ColumnSource {
+    Intercept,
+    /// A numeric predictor or one factor level.
+    Main(SourcePart),
+    /// The product of two parts (an interaction).
+    Product(SourcePart, SourcePart),
+    /// A ready-made column ([`Design::from_columns`]).
+    Given,
+}
+
 /// A dense model matrix.
 #[derive(Debug, Clone)]
 pub struct Design {
@@ -73,6 +92,7 @@ pub struct Design {
     values: Vec<f64>,
     names: Vec<String>,
     kinds: Vec<ColumnKind>,
+    sources: Vec<ColumnSource>,
 }
 
 impl Design {
@@ -84,9 +104,14 @@ impl Design {
             .predictors
             .iter()
             .enumerate()
-            .map(|(k, p)| pieces_of(p, full == Some(k)))
+            .map(|(k, p)| pieces_of(k, p, full == Some(k)))
             .collect();
-        let blocks: Vec<Vec<Piece<'_>>> = spec.predictors.iter().map(|p| pieces_of(p, false)).collect();
+        let blocks: Vec<Vec<Piece<'_>>> = spec
+            .predictors
+            .iter()
+            .enumerate()
+            .map(|(k, p)| pieces_of(k, p, false))
+            .collect();
         for p in &spec.predictors {
             check_predictor(n, p)?;
         }
@@ -116,11 +141,13 @@ impl Design {
             values: Vec::with_capacity(width * n),
             names: Vec::with_capacity(width),
             kinds: Vec::with_capacity(width),
+            sources: Vec::with_capacity(width),
         };
         if spec.intercept {
             design.values.resize(n, 1.0);
             design.names.push("intercept".to_string());
             design.kinds.push(ColumnKind::Intercept);
+            design.sources.push(ColumnSource::Intercept);
         }
         for block in &mains {
             for piece in block {
@@ -138,6 +165,7 @@ impl Design {
                     }
                     design.names.push(format!("{}:{}", pa.name(), pb.name()));
                     design.kinds.push(ColumnKind::Product);
+                    design.sources.push(ColumnSource::Product(pa.source(), pb.source()));
                 }
             }
         }
@@ -157,6 +185,7 @@ impl Design {
             values: Vec::with_capacity(n * columns.len()),
             names: Vec::new(),
             kinds: Vec::new(),
+            sources: Vec::new(),
         };
         for (name, kind, values) in columns {
             if values.len() != n {
@@ -176,6 +205,7 @@ impl Design {
             design.values.extend_from_slice(&values);
             design.names.push(name);
             design.kinds.push(kind);
+            design.sources.push(ColumnSource::Given);
         }
         Ok(design)
     }
@@ -192,6 +222,7 @@ impl Design {
             values,
             names: self.names.clone(),
             kinds: self.kinds.clone(),
+            sources: self.sources.clone(),
         }
     }
 
@@ -206,6 +237,10 @@ impl Design {
     }
     pub fn kinds(&self) -> &[ColumnKind] {
         &self.kinds
+    }
+    /// How each column was built, in column order.
+    pub fn sources(&self) -> &[ColumnSource] {
+        &self.sources
     }
     pub fn has_intercept(&self) -> bool {
         self.kinds.first() == Some(&ColumnKind::Intercept)
@@ -236,16 +271,19 @@ impl Design {
             Piece::Numeric { .. } => ColumnKind::Numeric,
             Piece::Level { .. } => ColumnKind::Indicator,
         });
+        self.sources.push(ColumnSource::Main(piece.source()));
     }
 }
 
 /// One design column contributed by a predictor.
 enum Piece<'a> {
     Numeric {
+        predictor: usize,
         name: &'a str,
         values: &'a [f64],
     },
     Level {
+        predictor: usize,
         name: &'a str,
         level: &'a str,
         codes: &'a [u32],
@@ -258,6 +296,18 @@ impl Piece<'_> {
         match self {
             Piece::Numeric { name, .. } => (*name).to_string(),
             Piece::Level { name, level, .. } => format!("{name}={level}"),
+        }
+    }
+    fn source(&self) -> SourcePart {
+        match self {
+            Piece::Numeric { predictor, .. } => SourcePart {
+                predictor: *predictor,
+                level: None,
+            },
+            Piece::Level { predictor, level, .. } => SourcePart {
+                predictor: *predictor,
+                level: Some((*level).to_string()),
+            },
         }
     }
     fn value(&self, i: usize) -> f64 {
@@ -282,15 +332,20 @@ pub fn full_coded_factor(intercept: bool, mut is_factor: impl Iterator<Item = bo
 
 /// The columns of one predictor: a numeric predictor's values, or a factor's indicators (all
 /// levels with `all_levels`, otherwise all but the reference).
-fn pieces_of<'a>(p: &Predictor<'a>, all_levels: bool) -> Vec<Piece<'a>> {
+fn pieces_of<'a>(predictor: usize, p: &Predictor<'a>, all_levels: bool) -> Vec<Piece<'a>> {
     match p.values {
-        PredictorValues::Numeric(values) => vec![Piece::Numeric { name: p.name, values }],
+        PredictorValues::Numeric(values) => vec![Piece::Numeric {
+            predictor,
+            name: p.name,
+            values,
+        }],
         PredictorValues::Factor(f) => f
             .levels
             .iter()
             .enumerate()
             .filter(|(code, _)| all_levels || *code != f.reference)
             .map(|(code, level)| Piece::Level {
+                predictor,
                 name: p.name,
                 level,
                 codes: f.codes,

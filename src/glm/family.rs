@@ -1,18 +1,94 @@
 //! Exponential-family distributions with their link functions.
 //!
-//! The solver only sees this trait, so another family (for example a negative binomial with a
-//! fixed or profiled shape) plugs in without touching it. Formulas follow McCullagh & Nelder,
-//! *Generalized Linear Models* (2nd ed., 1989), ch. 2: working weight w·(dmu/deta)²/V(mu) and
-//! working response eta - offset + (y - mu)·deta/dmu.
+//! The solver, the inference and the SQL layer only see this trait: a family states its
+//! variance, deviance and log-likelihood, how its scale is handled ([`Scale`], which also fixes
+//! the reference distribution of its tests), whether its fits can run on covariate-pattern sums,
+//! and its own extra statistics. Formulas follow McCullagh & Nelder, *Generalized Linear
+//! Models* (2nd ed., 1989), ch. 2: working weight w·(dmu/deta)²/V(mu) and working response
+//! eta - offset + (y - mu)·deta/dmu.
 
 use statrs::function::gamma::ln_gamma;
 
+use super::overdispersion::{ScoreTest, cameron_trivedi};
+
+/// Statistics a family adds to its fits (all `None` for families without them).
+#[derive(Debug, Clone, Copy, PartialEq, Default)]
+pub struct FamilyTests {
+    /// Poisson: Cameron & Trivedi (1990) auxiliary-regression test of Var(y) = mu against
+    /// Var(y) = mu + alpha·mu², the t statistic of alpha and its one-sided p-value (alpha > 0).
+    pub overdispersion: Option<ScoreTest>,
+}
+
+/// Which family a fit is of: the typed form of its name.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash)]
+pub enum FamilyKind {
+    Poisson,
+    Gaussian,
+}
+
+impl FamilyKind {
+    pub const ALL: [FamilyKind; 2] = [FamilyKind::Poisson, FamilyKind::Gaussian];
+
+    /// The name reported in the `family` field.
+    pub fn name(self) -> &'static str {
+        match self {
+            FamilyKind::Poisson => "poisson",
+            FamilyKind::Gaussian => "gaussian",
+        }
+    }
+
+    pub fn parse(name: &str) -> Option<FamilyKind> {
+        FamilyKind::ALL.into_iter().find(|k| k.name() == name)
+    }
+}
+
+/// How a family's dispersion is handled; it decides the reference distribution of Wald
+/// intervals and of the model test, and whether goodness-of-fit tests exist.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Scale {
+    /// Fixed at 1 (Poisson): z intervals, likelihood-ratio chi-square model test, deviance and
+    /// Pearson goodness-of-fit p-values.
+    Fixed,
+    /// Estimated from the residuals (least squares): t intervals on df_resid, F model test, no
+    /// goodness-of-fit p-values.
+    Estimated,
+    /// A parameter of the family estimated with the coefficients by maximum likelihood (such as
+    /// a negative binomial shape): z intervals and likelihood-ratio tests, no goodness-of-fit
+    /// p-values.
+    OwnParameter,
+}
+
+impl Scale {
+    /// Whether Wald statistics are referred to Student t on df_resid (else the standard normal).
+    pub fn uses_t(self) -> bool {
+        self == Scale::Estimated
+    }
+
+    /// Whether the deviance and Pearson X² have a chi-square reference (goodness of fit).
+    pub fn has_gof_tests(self) -> bool {
+        self == Scale::Fixed
+    }
+}
+
 /// A response distribution and its link.
 pub trait Family: Sync {
+    fn kind(&self) -> FamilyKind;
     /// Short lower-case name (`poisson`, `gaussian`).
-    fn name(&self) -> &'static str;
-    /// True when the dispersion is fixed at 1 (Poisson); false when it is estimated (Gaussian).
-    fn fixed_scale(&self) -> bool;
+    fn name(&self) -> &'static str {
+        self.kind().name()
+    }
+    fn scale(&self) -> Scale;
+    /// Whether fits of this family may run on covariate-pattern sums (see `collapse`): true
+    /// when the likelihood depends on a pattern's rows only through sums it keeps.
+    fn collapsible(&self) -> bool {
+        false
+    }
+    /// The family's own statistics of a fit with means `mu` (Poisson: the overdispersion test);
+    /// `rows` is the number of rows the fit stands for.
+    fn extra_tests(&self, y: &[f64], mu: &[f64], weights: Option<&[f64]>, rows: usize) -> FamilyTests {
+        let _ = (y, mu, weights, rows);
+        FamilyTests::default()
+    }
     /// Why `y` is not an acceptable response, if it is not.
     fn check_response(&self, y: f64) -> Option<&'static str>;
     /// Starting fitted means for IRLS.
@@ -52,9 +128,10 @@ pub trait Family: Sync {
             .map(|((&y, &m), &w)| w * self.unit_deviance(y, m))
             .sum()
     }
-    /// Number of estimated parameters besides the coefficients (1 for an estimated scale).
+    /// Number of estimated parameters besides the coefficients counted in AIC and BIC (1 for a
+    /// family parameter; least-squares programs do not count the residual variance).
     fn extra_parameters(&self) -> usize {
-        usize::from(!self.fixed_scale())
+        usize::from(self.scale() == Scale::OwnParameter)
     }
     /// Whether fitted means can run off to the edge of their range (zero-count cells).
     fn has_boundary(&self) -> bool;
@@ -65,11 +142,20 @@ pub trait Family: Sync {
 pub struct Poisson;
 
 impl Family for Poisson {
-    fn name(&self) -> &'static str {
-        "poisson"
+    fn kind(&self) -> FamilyKind {
+        FamilyKind::Poisson
     }
-    fn fixed_scale(&self) -> bool {
+    fn scale(&self) -> Scale {
+        Scale::Fixed
+    }
+    fn collapsible(&self) -> bool {
         true
+    }
+    /// The Cameron & Trivedi (1990) overdispersion test (unweighted fits only).
+    fn extra_tests(&self, y: &[f64], mu: &[f64], weights: Option<&[f64]>, rows: usize) -> FamilyTests {
+        FamilyTests {
+            overdispersion: weights.is_none().then(|| cameron_trivedi(y, mu, rows)).flatten(),
+        }
     }
     fn check_response(&self, y: f64) -> Option<&'static str> {
         if !y.is_finite() {
@@ -148,11 +234,11 @@ impl Family for Poisson {
 pub struct Gaussian;
 
 impl Family for Gaussian {
-    fn name(&self) -> &'static str {
-        "gaussian"
+    fn kind(&self) -> FamilyKind {
+        FamilyKind::Gaussian
     }
-    fn fixed_scale(&self) -> bool {
-        false
+    fn scale(&self) -> Scale {
+        Scale::Estimated
     }
     fn check_response(&self, y: f64) -> Option<&'static str> {
         (!y.is_finite()).then_some("values must be finite")
@@ -193,10 +279,6 @@ impl Family for Gaussian {
         let rss: f64 = y.iter().zip(mu).zip(w).map(|((y, m), w)| w * (y - m) * (y - m)).sum();
         let log_w: f64 = w.iter().map(|w| w.ln()).sum();
         -0.5 * n * ((2.0 * std::f64::consts::PI * rss / n).ln() + 1.0) + 0.5 * log_w
-    }
-    /// Ordinary least-squares programs count only the coefficients in AIC and BIC; so do we.
-    fn extra_parameters(&self) -> usize {
-        0
     }
     fn has_boundary(&self) -> bool {
         false

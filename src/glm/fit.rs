@@ -1,45 +1,22 @@
-//! Fitting: iteratively reweighted least squares (Fisher scoring) with step-halving, on
-//! internally standardised columns, followed by the fit statistics.
+//! Fitting a generalized linear model, as a few small steps: check the input, screen the
+//! trivial cases (too few rows, no events), find aliased columns, run IRLS
+//! ([`irls`](super::irls)), handle estimates at the boundary, compute the covariances, then the
+//! statistics. Each step is one function below.
 //!
-//! Method: Nelder & Wedderburn (1972); McCullagh & Nelder (1989) §2.5. Each iteration solves
-//! (X'WX) b = X'Wz with W = w·(dmu/deta)²/V(mu) and z = eta - offset + (y - mu)/(dmu/deta).
-//! A step that makes the deviance non-finite or larger is halved (up to 30 times).
-//! Convergence: relative deviance change |D_k - D_{k-1}|/(|D_k| + 0.1) < tol, or the largest
-//! coefficient step on the standardised scale below sqrt(tol).
-//!
-//! Numerical safeguards:
-//! * columns are centred (when there is an intercept) and scaled to unit mean square before
-//!   fitting; estimates and covariances are transformed back exactly (b = T b', V = T V' T');
-//! * aliased columns are found once, from the Cholesky pivots of X'W0X in column order, and left
-//!   out of the solve (estimate reported as NULL with the flag `aliased`);
-//! * estimates at the boundary (a zero-count cell whose fitted mean runs to 0, so that the MLE is
-//!   infinite) are recognised from the converged fit: zero-count rows with fitted means below
-//!   1e-8 of the null model's, together with coefficients still moving by O(1) per iteration.
+//! Boundary estimates (a zero-count cell whose fitted mean runs to 0, so that the MLE is
+//! infinite) are recognised from the converged fit: zero-count rows with fitted means below
+//! 1e-6 of the null model's; the model is refitted without them (see
+//! [`refit_without_boundary_rows`]).
+
+use std::borrow::Cow;
 
 use nalgebra::DMatrix;
 
 use super::design::Design;
 use super::error::FitError;
-use super::family::Family;
-use super::solve::{ALIAS_TOLERANCE, NormalEquations, cholesky_in_place};
-
-/// Controls for IRLS.
-#[derive(Debug, Clone, Copy, PartialEq)]
-pub struct FitOptions {
-    /// Iteration cap (default 100).
-    pub max_iter: usize,
-    /// Convergence tolerance on the relative deviance change (default 1e-12).
-    pub tol: f64,
-}
-
-impl Default for FitOptions {
-    fn default() -> Self {
-        FitOptions {
-            max_iter: 100,
-            tol: 1e-12,
-        }
-    }
-}
+use super::family::{Family, FamilyKind, FamilyTests, Scale};
+use super::irls::{FitOptions, IrlsRun, Standardised, aliased_columns, irls};
+use super::solve::NormalEquations;
 
 /// The response side of a model: one value per design row.
 #[derive(Debug, Clone, Copy)]
@@ -131,13 +108,6 @@ fn plural(n: usize) -> &'static str {
     if n == 1 { "" } else { "s" }
 }
 
-/// A score test statistic with its p-value.
-#[derive(Debug, Clone, Copy, PartialEq)]
-pub struct ScoreTest {
-    pub statistic: f64,
-    pub p_value: f64,
-}
-
 /// Fit-level statistics. `None` marks a statistic that does not exist for this fit.
 #[derive(Debug, Clone, PartialEq, Default)]
 pub struct FitStats {
@@ -158,17 +128,26 @@ pub struct FitStats {
     pub total_response: f64,
     /// Σ w·exp(offset) (the total exposure of a rate model; n without an offset).
     pub total_exposure: f64,
-    /// Cameron & Trivedi (1990) auxiliary-regression test of Var(y) = mu against
-    /// Var(y) = mu + alpha·mu²: t statistic of alpha and its one-sided p-value (alpha > 0).
-    pub overdispersion: Option<ScoreTest>,
+    /// The family's own tests ([`Family::extra_tests`]).
+    pub extra: FamilyTests,
+}
+
+/// A parameter of the family estimated with the coefficients (none of today's families has
+/// one; a negative binomial shape would).
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct FamilyParameter {
+    pub name: &'static str,
+    pub estimate: f64,
+    pub std_error: Option<f64>,
 }
 
 /// A fitted generalized linear model.
 #[derive(Debug, Clone)]
 pub struct GlmFit {
-    pub family: &'static str,
-    /// True when the dispersion is fixed at 1 (Poisson), false when estimated (Gaussian).
-    pub fixed_scale: bool,
+    pub family: FamilyKind,
+    pub scale: Scale,
+    /// The family's own parameter, when it has one.
+    pub parameter: Option<FamilyParameter>,
     pub names: Vec<String>,
     pub states: Vec<TermState>,
     /// Final coefficients on the caller's scale; 0 for aliased columns. Meaningful for
@@ -254,8 +233,28 @@ pub fn fit<F: Family>(family: &F, design: &Design, input: FitInput<'_>, opts: Fi
 pub(crate) fn note_saturation(fit: &mut GlmFit) {
     let estimated = fit.states.contains(&TermState::Estimated);
     if estimated && fit.stats.df_resid == Some(0) && !fit.issues.contains(&FitIssue::Saturated) {
-        fit.stats.overdispersion = None;
+        fit.stats.extra = FamilyTests::default();
         fit.issues.push(FitIssue::Saturated);
+    }
+}
+
+/// The response side with defaults filled in: prior weights 1 and offset 0 when not given.
+struct Response<'a> {
+    y: &'a [f64],
+    offset: Cow<'a, [f64]>,
+    w: Cow<'a, [f64]>,
+    /// The caller's weights, if any (some statistics exist only for unweighted fits).
+    weights: Option<&'a [f64]>,
+}
+
+impl<'a> Response<'a> {
+    fn new(input: FitInput<'a>, n: usize) -> Self {
+        Response {
+            y: input.y,
+            offset: input.offset.map_or_else(|| Cow::Owned(vec![0.0; n]), Cow::Borrowed),
+            w: input.weights.map_or_else(|| Cow::Owned(vec![1.0; n]), Cow::Borrowed),
+            weights: input.weights,
+        }
     }
 }
 
@@ -270,30 +269,9 @@ pub(crate) fn fit_with_row_count<F: Family>(
 ) -> Result<GlmFit, FitError> {
     let n = design.n_rows();
     let p = design.n_columns();
-    validate(family, n, &input)?;
-    if !(opts.tol > 0.0 && opts.tol < 1.0) || opts.max_iter == 0 {
-        return Err(FitError::BadSpec(format!(
-            "tolerance must be in (0, 1) and the iteration cap at least 1 (got {} and {})",
-            opts.tol, opts.max_iter
-        )));
-    }
-    let ones;
-    let w = match input.weights {
-        Some(w) => w,
-        None => {
-            ones = vec![1.0; n];
-            &ones
-        }
-    };
-    let zeros;
-    let offset = match input.offset {
-        Some(o) => o,
-        None => {
-            zeros = vec![0.0; n];
-            &zeros
-        }
-    };
-    let y = input.y;
+    validate(family, n, &input, opts)?;
+    let response = Response::new(input, n);
+    let (y, offset, w) = (response.y, &*response.offset, &*response.w);
     let mut stats = FitStats {
         n_used: n,
         n_params: p,
@@ -301,37 +279,23 @@ pub(crate) fn fit_with_row_count<F: Family>(
         total_exposure: offset.iter().zip(w).map(|(o, w)| o.exp() * w).sum(),
         ..FitStats::default()
     };
-    if rows == 0 || rows < p {
-        return Ok(unfitted(
-            family,
-            design,
-            stats,
-            vec![FitIssue::TooFewRows { rows, params: p }],
-        ));
-    }
-    if family.has_boundary() && y.iter().all(|&v| v == 0.0) {
-        return Ok(no_events(family, design, stats, n));
+    if let Some(trivial) = screen(family, design, &response, &mut stats, rows) {
+        return Ok(trivial);
     }
 
     let standard = Standardised::new(design);
-    let mut aliased = vec![false; p];
-    {
-        let all: Vec<usize> = (0..p).collect();
-        let mut ne = NormalEquations::new(p);
-        ne.accumulate(&standard.x, n, &all, w, None);
-        cholesky_in_place(&mut ne.gram, p, ALIAS_TOLERANCE, Some(&mut aliased));
-    }
+    let aliased = aliased_columns(&standard.x, n, p, w);
     let active: Vec<usize> = (0..p).filter(|&j| !aliased[j]).collect();
-    let k = active.len();
-    stats.rank = k;
-    stats.df_resid = Some(n - k);
-
-    let run = irls(family, &standard.x, n, &active, y, offset, w, opts);
+    stats.rank = active.len();
+    stats.df_resid = Some(n - active.len());
     let mut issues = Vec::new();
     if aliased.iter().any(|&a| a) {
-        issues.push(FitIssue::RankDeficient { aliased: p - k });
+        issues.push(FitIssue::RankDeficient {
+            aliased: p - active.len(),
+        });
     }
-    let Some(run) = run else {
+
+    let Some(run) = irls(family, &standard.x, n, &active, y, offset, w, opts) else {
         issues.push(FitIssue::NumericalBreakdown);
         return Ok(unfitted(family, design, stats, issues));
     };
@@ -339,22 +303,110 @@ pub(crate) fn fit_with_row_count<F: Family>(
     family.null_fitted(y, offset, w, design.has_intercept(), &mut null_mu);
     stats.null_deviance = Some(weighted_deviance(family, y, &null_mu, w));
 
-    if family.has_boundary() {
-        let boundary: Vec<usize> = (0..n)
-            .filter(|&i| y[i] == 0.0 && run.mu[i] < BOUNDARY_MU_RATIO * null_mu[i])
-            .collect();
-        if !boundary.is_empty() {
-            if let Some(fit) = refit_without_boundary_rows(family, design, input, opts, &aliased, &boundary, &stats)? {
-                return Ok(fit);
-            }
-        }
+    if let Some(fit) = boundary_refit(family, design, input, opts, &aliased, &run, &null_mu, &stats)? {
+        return Ok(fit);
     }
     if run.stalled {
         issues.push(FitIssue::NumericalBreakdown);
         return Ok(unfitted(family, design, stats, issues));
     }
+    let Some((cov_unscaled, cov_sandwich, beta)) = covariances(family, &standard, &active, &run, &response) else {
+        issues.push(FitIssue::NumericalBreakdown);
+        return Ok(unfitted(family, design, stats, issues));
+    };
+    statistics(family, &response, &run.mu, rows, &mut stats);
+    if !run.converged {
+        issues.push(FitIssue::NotConverged {
+            iterations: run.iterations,
+        });
+    }
+    let mut estimates = vec![0.0; p];
+    for (a, &j) in active.iter().enumerate() {
+        estimates[j] = beta[a];
+    }
+    Ok(GlmFit {
+        family: family.kind(),
+        scale: family.scale(),
+        parameter: None,
+        names: design.names().to_vec(),
+        states: aliased
+            .iter()
+            .map(|&a| if a { TermState::Aliased } else { TermState::Estimated })
+            .collect(),
+        estimates,
+        cov_unscaled: embed(&cov_unscaled, &active, p),
+        cov_sandwich: embed(&cov_sandwich, &active, p),
+        fitted: run.mu,
+        stats,
+        issues,
+        iterations: run.iterations,
+        converged: run.converged,
+    })
+}
 
-    // Covariances on the standardised scale, at the final estimates.
+/// The fits that need no iteration: too few rows for the parameters, or (for families with a
+/// boundary) no events at all.
+fn screen<F: Family>(
+    family: &F,
+    design: &Design,
+    response: &Response<'_>,
+    stats: &mut FitStats,
+    rows: usize,
+) -> Option<GlmFit> {
+    let p = design.n_columns();
+    if rows == 0 || rows < p {
+        return Some(unfitted(
+            family,
+            design,
+            stats.clone(),
+            vec![FitIssue::TooFewRows { rows, params: p }],
+        ));
+    }
+    if family.has_boundary() && response.y.iter().all(|&v| v == 0.0) {
+        return Some(no_events(family, design, stats.clone(), design.n_rows()));
+    }
+    None
+}
+
+/// Zero-count rows whose fitted means ran to 0 (below [`BOUNDARY_MU_RATIO`] of the null
+/// model's), and the refit without them when that makes some terms boundary terms.
+#[allow(clippy::too_many_arguments)]
+fn boundary_refit<F: Family>(
+    family: &F,
+    design: &Design,
+    input: FitInput<'_>,
+    opts: FitOptions,
+    aliased: &[bool],
+    run: &IrlsRun,
+    null_mu: &[f64],
+    stats: &FitStats,
+) -> Result<Option<GlmFit>, FitError> {
+    if !family.has_boundary() {
+        return Ok(None);
+    }
+    let y = input.y;
+    let boundary: Vec<usize> = (0..y.len())
+        .filter(|&i| y[i] == 0.0 && run.mu[i] < BOUNDARY_MU_RATIO * null_mu[i])
+        .collect();
+    if boundary.is_empty() {
+        return Ok(None);
+    }
+    refit_without_boundary_rows(family, design, input, opts, aliased, &boundary, stats)
+}
+
+/// Covariances at the final estimates, on the caller's scale: the inverse Fisher information
+/// (X'WX)⁻¹ and the HC0 sandwich (X'WX)⁻¹ (Σ s_i² x_i x_i') (X'WX)⁻¹, both over the active
+/// columns, and the estimates transformed back. `None` when X'WX cannot be inverted.
+fn covariances<F: Family>(
+    family: &F,
+    standard: &Standardised,
+    active: &[usize],
+    run: &IrlsRun,
+    response: &Response<'_>,
+) -> Option<(DMatrix<f64>, DMatrix<f64>, nalgebra::DVector<f64>)> {
+    let (y, w) = (response.y, &*response.w);
+    let n = y.len();
+    let k = active.len();
     let mut ne = NormalEquations::new(k);
     let mut ww = vec![0.0; n];
     let mut score2 = vec![0.0; n];
@@ -365,61 +417,28 @@ pub(crate) fn fit_with_row_count<F: Family>(
         let s = w[i] * (y[i] - run.mu[i]) * d / v;
         score2[i] = s * s;
     }
-    ne.accumulate(&standard.x, n, &active, &ww, None);
-    let Some(bread) = symmetric_inverse(&ne.gram, k) else {
-        issues.push(FitIssue::NumericalBreakdown);
-        return Ok(unfitted(family, design, stats, issues));
-    };
-    ne.accumulate(&standard.x, n, &active, &score2, None);
+    ne.accumulate(&standard.x, n, active, &ww, None);
+    let bread = symmetric_inverse(&ne.gram, k)?;
+    ne.accumulate(&standard.x, n, active, &score2, None);
     let meat = symmetric_from_upper(&ne.gram, k);
     let sandwich = &bread * meat * &bread;
-
-    let t = standard.back_transform(&active);
+    let t = standard.back_transform(active);
     let beta = &t * nalgebra::DVector::from_column_slice(&run.beta);
-    let cov_unscaled = &t * bread * t.transpose();
-    let cov_sandwich = &t * sandwich * t.transpose();
+    Some((&t * bread * t.transpose(), &t * sandwich * t.transpose(), beta))
+}
 
-    let states: Vec<TermState> = aliased
-        .iter()
-        .map(|&a| if a { TermState::Aliased } else { TermState::Estimated })
-        .collect();
-    let mut estimates = vec![0.0; p];
-    for (a, &j) in active.iter().enumerate() {
-        estimates[j] = beta[a];
-    }
-
-    // Statistics on the rows.
-    stats.deviance = Some(weighted_deviance(family, y, &run.mu, w));
+/// Deviance, Pearson X², log-likelihood with AIC/BIC, and the family's own tests of a fit with
+/// means `mu`; `rows` is the number of rows the fit stands for.
+fn statistics<F: Family>(family: &F, response: &Response<'_>, mu: &[f64], rows: usize, stats: &mut FitStats) {
+    let (y, w) = (response.y, &*response.w);
+    stats.deviance = Some(weighted_deviance(family, y, mu, w));
     stats.pearson_chi2 = Some(
-        (0..n)
-            .map(|i| w[i] * (y[i] - run.mu[i]).powi(2) / family.variance(run.mu[i]))
+        (0..y.len())
+            .map(|i| w[i] * (y[i] - mu[i]).powi(2) / family.variance(mu[i]))
             .sum(),
     );
-    let loglik = family.log_likelihood(y, &run.mu, w);
-    set_information_criteria(&mut stats, family, loglik);
-    if family.name() == "poisson" && input.weights.is_none() {
-        stats.overdispersion = cameron_trivedi(y, &run.mu, n);
-    }
-    if !run.converged {
-        issues.push(FitIssue::NotConverged {
-            iterations: run.iterations,
-        });
-    }
-
-    Ok(GlmFit {
-        family: family.name(),
-        fixed_scale: family.fixed_scale(),
-        names: design.names().to_vec(),
-        states,
-        estimates,
-        cov_unscaled: embed(&cov_unscaled, &active, p),
-        cov_sandwich: embed(&cov_sandwich, &active, p),
-        fitted: run.mu,
-        stats,
-        issues,
-        iterations: run.iterations,
-        converged: run.converged,
-    })
+    set_information_criteria(stats, family, family.log_likelihood(y, mu, w));
+    stats.extra = family.extra_tests(y, mu, response.weights, rows);
 }
 
 /// Boundary estimates. Zero-count rows whose fitted means ran to 0 are set aside and the model
@@ -464,11 +483,7 @@ fn refit_without_boundary_rows<F: Family>(
     for &j in &newly_aliased {
         fit.states[j] = TermState::Boundary;
     }
-    let overdispersion = if fit.stats.overdispersion.is_some() {
-        cameron_trivedi(&y, &fit.fitted, n)
-    } else {
-        None
-    };
+    let extra = family.extra_tests(&y, &fit.fitted, weights.as_deref(), n);
     let mut fitted = vec![0.0; n];
     for (&i, &mu) in keep.iter().zip(&fit.fitted) {
         fitted[i] = mu;
@@ -477,7 +492,7 @@ fn refit_without_boundary_rows<F: Family>(
     let loglik = fit.stats.loglik.unwrap_or(0.0);
     fit.stats = FitStats {
         df_resid: Some(n - full_stats.rank),
-        overdispersion,
+        extra,
         deviance: fit.stats.deviance,
         pearson_chi2: fit.stats.pearson_chi2,
         ..full_stats.clone()
@@ -527,7 +542,13 @@ pub(crate) fn set_information_criteria<F: Family>(stats: &mut FitStats, family: 
     }
 }
 
-fn validate<F: Family>(family: &F, n: usize, input: &FitInput<'_>) -> Result<(), FitError> {
+fn validate<F: Family>(family: &F, n: usize, input: &FitInput<'_>, opts: FitOptions) -> Result<(), FitError> {
+    if !(opts.tol > 0.0 && opts.tol < 1.0) || opts.max_iter == 0 {
+        return Err(FitError::BadSpec(format!(
+            "tolerance must be in (0, 1) and the iteration cap at least 1 (got {} and {})",
+            opts.tol, opts.max_iter
+        )));
+    }
     if input.y.len() != n {
         return Err(FitError::LengthMismatch {
             what: "response".into(),
@@ -620,8 +641,9 @@ pub(crate) fn weighted_deviance<F: Family>(family: &F, y: &[f64], mu: &[f64], w:
 fn unfitted<F: Family>(family: &F, design: &Design, stats: FitStats, issues: Vec<FitIssue>) -> GlmFit {
     let p = design.n_columns();
     GlmFit {
-        family: family.name(),
-        fixed_scale: family.fixed_scale(),
+        family: family.kind(),
+        scale: family.scale(),
+        parameter: None,
         names: design.names().to_vec(),
         states: vec![TermState::NotEstimated; p],
         estimates: vec![0.0; p],
@@ -650,226 +672,6 @@ fn no_events<F: Family>(family: &F, design: &Design, stats: FitStats, n: usize) 
     fit.stats.null_deviance = Some(0.0);
     set_information_criteria(&mut fit.stats, family, 0.0);
     fit
-}
-
-/// Cameron & Trivedi (1990): regress ((y - mu)² - y)/mu on mu without intercept by OLS; the t
-/// statistic of the slope is asymptotically N(0,1) under the Poisson hypothesis. Returns the
-/// statistic and the one-sided p-value for overdispersion.
-/// `n` is the number of rows the test is about: rows set aside at the boundary (y = 0 with
-/// mu -> 0) add z = 0 at regressor 0, so they count in n and add nothing to the sums.
-pub(crate) fn cameron_trivedi(y: &[f64], mu: &[f64], n: usize) -> Option<ScoreTest> {
-    if n < 2 {
-        return None;
-    }
-    let (mut szx, mut sxx, mut szz) = (0.0, 0.0, 0.0);
-    for (&y, &m) in y.iter().zip(mu) {
-        let z = ((y - m).powi(2) - y) / m;
-        szx += z * m;
-        sxx += m * m;
-        szz += z * z;
-    }
-    aux_regression_t(szx, sxx, szz, n)
-}
-
-/// t statistic of the slope of a no-intercept OLS regression from its sums Σzx, Σx², Σz².
-pub(crate) fn aux_regression_t(szx: f64, sxx: f64, szz: f64, n: usize) -> Option<ScoreTest> {
-    let alpha = szx / sxx;
-    let rss = (szz - alpha * szx).max(0.0);
-    let s2 = rss / (n as f64 - 1.0);
-    let t = alpha / (s2 / sxx).sqrt();
-    if !t.is_finite() {
-        return None;
-    }
-    Some(ScoreTest {
-        statistic: t,
-        p_value: super::inference::normal_sf(t),
-    })
-}
-
-/// Columns centred (with an intercept) and scaled to unit mean square.
-struct Standardised {
-    x: Vec<f64>,
-    center: Vec<f64>,
-    spread: Vec<f64>,
-    intercept: bool,
-}
-
-impl Standardised {
-    fn new(design: &Design) -> Self {
-        let n = design.n_rows();
-        let p = design.n_columns();
-        let intercept = design.has_intercept();
-        let mut x = Vec::with_capacity(n * p);
-        let mut center = vec![0.0; p];
-        let mut spread = vec![1.0; p];
-        for j in 0..p {
-            let col = design.column(j);
-            if intercept && j == 0 {
-                x.extend_from_slice(col);
-                continue;
-            }
-            let c = if intercept {
-                col.iter().sum::<f64>() / n as f64
-            } else {
-                0.0
-            };
-            // Root mean square of (x - c), computed relative to max |x - c| so that values
-            // near 1e200 do not overflow when squared.
-            let peak = col.iter().fold(0.0f64, |m, v| m.max((v - c).abs()));
-            let ms = col.iter().map(|v| ((v - c) / peak).powi(2)).sum::<f64>() / n as f64;
-            // A column constant after centring stays all-zero and is then found aliased.
-            let s = if peak > 0.0 && peak.is_finite() && ms > 0.0 {
-                peak * ms.sqrt()
-            } else {
-                1.0
-            };
-            x.extend(col.iter().map(|v| (v - c) / s));
-            center[j] = c;
-            spread[j] = s;
-        }
-        Standardised {
-            x,
-            center,
-            spread,
-            intercept,
-        }
-    }
-
-    /// T with b = T b' over the active columns: b_j = b'_j / s_j and, with an intercept,
-    /// b_0 = b'_0 - Σ_j c_j b'_j / s_j.
-    fn back_transform(&self, active: &[usize]) -> DMatrix<f64> {
-        let k = active.len();
-        let mut t = DMatrix::zeros(k, k);
-        for (a, &j) in active.iter().enumerate() {
-            if self.intercept && j == 0 {
-                t[(a, a)] = 1.0;
-            } else {
-                t[(a, a)] = 1.0 / self.spread[j];
-                if self.intercept && active[0] == 0 {
-                    t[(0, a)] = -self.center[j] / self.spread[j];
-                }
-            }
-        }
-        t
-    }
-}
-
-/// The outcome of the IRLS loop, on the standardised scale.
-struct IrlsRun {
-    beta: Vec<f64>,
-    eta: Vec<f64>,
-    mu: Vec<f64>,
-    iterations: usize,
-    converged: bool,
-    /// The weighted normal equations became singular (weights of some rows underflowed):
-    /// iteration stopped at the last good estimates.
-    stalled: bool,
-}
-
-/// Step-halving attempts before giving up on an iteration.
-const MAX_HALVINGS: usize = 30;
-
-#[allow(clippy::too_many_arguments)]
-fn irls<F: Family>(
-    family: &F,
-    x: &[f64],
-    n: usize,
-    active: &[usize],
-    y: &[f64],
-    offset: &[f64],
-    w: &[f64],
-    opts: FitOptions,
-) -> Option<IrlsRun> {
-    let k = active.len();
-    let mut mu = vec![0.0; n];
-    family.start(y, offset, w, &mut mu);
-    let mut eta: Vec<f64> = mu.iter().map(|&m| family.link(m)).collect();
-    let mut ww = vec![0.0; n];
-    let mut z = vec![0.0; n];
-    let mut ne = NormalEquations::new(k);
-    let mut beta = vec![0.0; k];
-    let mut deviance = f64::INFINITY;
-    let mut trial_eta = vec![0.0; n];
-    let mut trial_mu = vec![0.0; n];
-    let mut converged = false;
-    let mut stalled = false;
-    let mut iterations = 0;
-    let constant = family.deviance_constant(y, w);
-
-    while iterations < opts.max_iter {
-        iterations += 1;
-        for i in 0..n {
-            let d = family.mu_eta_at(eta[i], mu[i]);
-            let v = family.variance(mu[i]);
-            if d > 0.0 && v > 0.0 && d.is_finite() {
-                ww[i] = w[i] * d * d / v;
-                z[i] = eta[i] - offset[i] + (y[i] - mu[i]) / d;
-            } else {
-                ww[i] = 0.0;
-                z[i] = eta[i] - offset[i];
-            }
-        }
-        ne.accumulate(x, n, active, &ww, Some(&z));
-        if !ne.factor() {
-            stalled = true;
-            break;
-        }
-        ne.solve();
-        let mut candidate = ne.rhs.clone();
-        let mut trial_dev = f64::NAN;
-        let first = iterations == 1;
-        for halving in 0..=MAX_HALVINGS {
-            linear_predictor(x, n, active, &candidate, offset, &mut trial_eta);
-            for i in 0..n {
-                trial_mu[i] = family.inverse_link(trial_eta[i]);
-            }
-            trial_dev = family.step_deviance(y, &trial_eta, &trial_mu, w, constant);
-            let acceptable = trial_dev.is_finite() && (first || trial_dev <= deviance + 1e-9 * (deviance.abs() + 0.1));
-            if acceptable || halving == MAX_HALVINGS {
-                break;
-            }
-            for (c, b) in candidate.iter_mut().zip(&beta) {
-                *c = 0.5 * (*c + b);
-            }
-        }
-        if !trial_dev.is_finite() {
-            return None;
-        }
-        let max_step = candidate
-            .iter()
-            .zip(&beta)
-            .map(|(c, b)| (c - b).abs())
-            .fold(0.0, f64::max);
-        let relative_change = (trial_dev - deviance).abs() / (trial_dev.abs() + 0.1);
-        beta.copy_from_slice(&candidate);
-        std::mem::swap(&mut eta, &mut trial_eta);
-        std::mem::swap(&mut mu, &mut trial_mu);
-        deviance = trial_dev;
-        if !first && (relative_change < opts.tol || max_step < opts.tol.sqrt()) {
-            converged = true;
-            break;
-        }
-    }
-    Some(IrlsRun {
-        beta,
-        stalled,
-        eta,
-        mu,
-        iterations,
-        converged,
-    })
-}
-
-/// eta = offset + X[:, active]·b.
-fn linear_predictor(x: &[f64], n: usize, active: &[usize], b: &[f64], offset: &[f64], eta: &mut [f64]) {
-    eta.copy_from_slice(offset);
-    for (a, &j) in active.iter().enumerate() {
-        let col = &x[j * n..(j + 1) * n];
-        let coef = b[a];
-        for (e, &v) in eta.iter_mut().zip(col) {
-            *e += coef * v;
-        }
-    }
 }
 
 fn symmetric_from_upper(upper: &[f64], k: usize) -> DMatrix<f64> {

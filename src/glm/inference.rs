@@ -9,12 +9,12 @@
 //! * `Hc0`: the sandwich (X'WX)⁻¹ (Σ s_i² x_i x_i') (X'WX)⁻¹ (White 1980; Huber 1967);
 //! * `Hc1`: HC0 times n/(n - p) (MacKinnon & White 1985), p = estimated coefficients.
 //!
-//! Families with a fixed scale use the standard normal; families with an estimated scale use
-//! Student t with df_resid (as ordinary least squares does).
+//! The family's [`Scale`] picks the reference distribution: the standard normal, or Student t
+//! with df_resid for an estimated scale (as ordinary least squares does).
 
-use statrs::distribution::{ChiSquared, ContinuousCDF, FisherSnedecor, Normal, StudentsT};
-
+use super::distributions::{chi2_sf, f_sf, normal_quantile, normal_sf, student_t_quantile, student_t_sf};
 use super::error::FitError;
+use super::family::Scale;
 use super::fit::{FitIssue, GlmFit, TermState};
 
 /// Which covariance the standard errors come from.
@@ -80,7 +80,7 @@ pub fn term_table(fit: &GlmFit, se: SeType, level: f64) -> Result<Vec<TermRow>, 
     check_level(level)?;
     let df = fit.stats.df_resid.unwrap_or(0);
     let scale = se_scale(fit, se);
-    let use_t = !fit.fixed_scale;
+    let use_t = fit.scale.uses_t();
     let quantile = if use_t {
         (df > 0).then(|| student_t_quantile(0.5 + level / 2.0, df as f64))
     } else {
@@ -148,7 +148,7 @@ fn finite(v: f64) -> Option<f64> {
 fn se_scale(fit: &GlmFit, se: SeType) -> Option<f64> {
     let df = fit.stats.df_resid?;
     match se {
-        SeType::Model if fit.fixed_scale => Some(1.0),
+        SeType::Model if fit.scale != Scale::Estimated => Some(1.0),
         SeType::Model | SeType::Quasi => fit.dispersion(),
         SeType::Hc0 => Some(1.0),
         SeType::Hc1 => (df > 0).then(|| fit.stats.n_used as f64 / df as f64),
@@ -166,8 +166,8 @@ pub struct ModelTest {
 }
 
 /// Test of the model against the null model (intercept and offset only): the likelihood-ratio
-/// chi-square (null deviance - deviance on the model's df) for fixed-scale families, the F test
-/// ((D0 - D)/df1)/(D/df2) for families with an estimated scale.
+/// chi-square (null deviance - deviance on the model's df), or for families with an estimated
+/// scale the F test ((D0 - D)/df1)/(D/df2).
 pub fn model_test(fit: &GlmFit) -> Option<ModelTest> {
     let df1 = fit.model_df();
     let (dev, null) = (fit.stats.deviance?, fit.stats.null_deviance?);
@@ -182,7 +182,7 @@ pub fn model_test(fit: &GlmFit) -> Option<ModelTest> {
         return None;
     }
     let df1 = df1 as f64;
-    if fit.fixed_scale {
+    if !fit.scale.uses_t() {
         let stat = (null - dev).max(0.0);
         Some(ModelTest {
             statistic: stat,
@@ -196,12 +196,11 @@ pub fn model_test(fit: &GlmFit) -> Option<ModelTest> {
             return None;
         }
         let f = ((null - dev) / df1) / (dev / df2);
-        let dist = FisherSnedecor::new(df1, df2).ok()?;
         Some(ModelTest {
             statistic: f,
             df: df1,
             df_denominator: Some(df2),
-            p_value: dist.sf(f),
+            p_value: f_sf(f, df1, df2)?,
         })
     }
 }
@@ -226,32 +225,4 @@ pub fn nested_lr_test(bigger_deviance: f64, smaller_deviance: f64, df: usize) ->
         df_denominator: None,
         p_value: chi2_sf(stat, df as f64),
     })
-}
-
-/// P(Z > z) for a standard normal Z.
-pub fn normal_sf(z: f64) -> f64 {
-    0.5 * statrs::function::erf::erfc(z / std::f64::consts::SQRT_2)
-}
-
-/// The standard normal quantile at probability `p` (0 < p < 1).
-pub fn normal_quantile(p: f64) -> f64 {
-    Normal::standard().inverse_cdf(p)
-}
-
-fn student_t_sf(t: f64, df: f64) -> f64 {
-    StudentsT::new(0.0, 1.0, df).map(|d| d.sf(t)).unwrap_or(f64::NAN)
-}
-
-fn student_t_quantile(p: f64, df: f64) -> f64 {
-    StudentsT::new(0.0, 1.0, df)
-        .map(|d| d.inverse_cdf(p))
-        .unwrap_or(f64::NAN)
-}
-
-/// P(chi²_df > x).
-pub fn chi2_sf(x: f64, df: f64) -> f64 {
-    if x <= 0.0 {
-        return 1.0;
-    }
-    ChiSquared::new(df).map(|d| d.sf(x)).unwrap_or(f64::NAN)
 }

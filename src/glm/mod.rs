@@ -6,27 +6,34 @@
 //!
 //! * [`design`]: predictors -> model matrix with stable column names;
 //! * [`family`]: distributions and links (Poisson/log, Gaussian/identity);
-//! * [`fit()`]: IRLS with step-halving, aliasing and boundary detection, fit statistics;
+//! * [`fit()`]: the fit in small steps (checks, aliasing, IRLS, boundary handling, covariances,
+//!   statistics);
 //! * [`inference`]: coefficient tables (model, quasi, HC0, HC1) and model tests;
+//! * [`distributions`]: tail probabilities and quantiles (normal, t, chi-square, F);
 //! * [`collapse`]: Poisson fits on merged covariate patterns with row-level statistics;
 //! * [`closed_form`]: exact single-rate intervals and two-rate comparisons.
 
 pub mod closed_form;
 pub mod collapse;
 pub mod design;
+pub mod distributions;
 mod error;
 pub mod family;
 mod fit;
 pub mod inference;
+mod irls;
+mod overdispersion;
 mod solve;
 
 pub use design::{
     ColumnKind, Design, DesignSpec, FactorColumn, MAX_DESIGN_COLUMNS, OwnedFactor, Predictor, PredictorValues,
 };
 pub use error::FitError;
-pub use family::{Family, Gaussian, Poisson};
+pub use family::{Family, FamilyKind, FamilyTests, Gaussian, Poisson, Scale};
 pub use fit::{
-    FitInput, FitIssue, FitOptions, FitStats, GlmFit, ScoreTest, TermState, deviance_residuals, fit, log_exposure,
+    FamilyParameter, FitInput, FitIssue, FitStats, GlmFit, TermState, deviance_residuals, fit, log_exposure,
     pearson_residuals,
 };
 pub use inference::{ModelTest, SeType, TermRow, model_test, term_table};
+pub use irls::FitOptions;
+pub use overdispersion::ScoreTest;

@@ -496,7 +496,6 @@ fn fit_group(data: &GroupData<'_>, out: &mut FitColumns) -> Result<()> {
             },
         })
         .collect();
-    let parts = term_parts(settings.intercept, &factors, &spec.interactions);
     let full = full_coded_factor(settings.intercept, factors.iter().map(Option::is_some));
     let infos: Vec<PredictorInfo> = spec
         .predictors
@@ -528,7 +527,7 @@ fn fit_group(data: &GroupData<'_>, out: &mut FitColumns) -> Result<()> {
         n_skipped: data.skipped,
         n_invalid: data.invalid,
         terms,
-        parts: parts.clone(),
+        parts: Vec::new(),
         predictors: infos.clone(),
         se_type: &settings.se,
         level: settings.level,
@@ -542,10 +541,7 @@ fn fit_group(data: &GroupData<'_>, out: &mut FitColumns) -> Result<()> {
     };
     let design = match (&problem, Design::build(n, &design_spec)) {
         (Some(p), _) => {
-            out.push(GroupResult {
-                parts: Vec::new(),
-                ..base(p.clone(), Vec::new())
-            });
+            out.push(base(p.clone(), Vec::new()));
             return Ok(());
         }
         // A too-wide design is a property of this group's data: it is reported on the group.
@@ -558,7 +554,7 @@ fn fit_group(data: &GroupData<'_>, out: &mut FitColumns) -> Result<()> {
         }
         (None, Ok(d)) => d,
     };
-    debug_assert_eq!(design.n_columns(), parts.len());
+    let parts: Vec<TermPart> = design.sources().iter().map(TermPart::from_source).collect();
     let function = data.kind.sql_name();
     let fitted = match &data.response {
         Response::Patterns(sums) => fit_poisson_patterns(&design, sums, settings.fit_options()),
@@ -588,6 +584,7 @@ fn fit_group(data: &GroupData<'_>, out: &mut FitColumns) -> Result<()> {
     }
     out.push(GroupResult {
         fit: Some(&fitted),
+        parts,
         ..base(status, terms)
     });
     Ok(())
@@ -597,55 +594,6 @@ fn fit_group(data: &GroupData<'_>, out: &mut FitColumns) -> Result<()> {
 /// coefficients is no ratio, so the `rate_ratio`, `rr_low` and `rr_high` fields are NULL.
 const NO_RATIO_NOTE: &str =
     "; rate ratios not reported (the response is not a natural logarithm; write ln(...) or the option response=log)";
-
-/// How each design column is built, in the core's column order (see `glm::design`).
-fn term_parts(intercept: bool, factors: &[Option<GroupFactor>], interactions: &[(usize, usize)]) -> Vec<TermPart> {
-    let full = full_coded_factor(intercept, factors.iter().map(Option::is_some));
-    let pieces = |k: usize, all_levels: bool| -> Vec<(u32, Option<String>)> {
-        match &factors[k] {
-            None => vec![(k as u32, None)],
-            Some(f) => f
-                .levels
-                .iter()
-                .enumerate()
-                .filter(|(c, _)| all_levels || *c != f.reference)
-                .map(|(_, l)| (k as u32, Some(l.clone())))
-                .collect(),
-        }
-    };
-    let mut parts = Vec::new();
-    if intercept {
-        parts.push(TermPart {
-            predictor: None,
-            level: None,
-            predictor2: None,
-            level2: None,
-        });
-    }
-    for k in 0..factors.len() {
-        for (p, l) in pieces(k, full == Some(k)) {
-            parts.push(TermPart {
-                predictor: Some(p),
-                level: l,
-                predictor2: None,
-                level2: None,
-            });
-        }
-    }
-    for &(a, b) in interactions {
-        for (pa, la) in pieces(a, false) {
-            for (pb, lb) in pieces(b, false) {
-                parts.push(TermPart {
-                    predictor: Some(pa),
-                    level: la.clone(),
-                    predictor2: Some(pb),
-                    level2: lb,
-                });
-            }
-        }
-    }
-    parts
-}
 
 static POISSON_FIT_DOC: LazyLock<Documentation> = LazyLock::new(|| {
     Documentation::builder(

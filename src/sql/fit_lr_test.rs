@@ -13,7 +13,7 @@ use statrs::distribution::{ContinuousCDF, FisherSnedecor};
 use super::fit_aggregate::DOC_SECTION;
 use super::result::Range;
 use super::scalar_util::{FitView, arg_arrays, exec_error};
-use crate::glm::inference::chi2_sf;
+use crate::glm::distributions::chi2_sf;
 
 /// The result fields: `chi2` (likelihood-ratio test) or `f` (F test, when the bigger fit has
 /// quasi standard errors) with `df` (and `df_resid`, the F test's denominator), `p_value`,

@@ -13,6 +13,7 @@ use datafusion::arrow::array::{
 use datafusion::arrow::buffer::OffsetBuffer;
 use datafusion::arrow::datatypes::{DataType, Field, Fields};
 
+use crate::glm::design::{ColumnSource, SourcePart};
 use crate::glm::{GlmFit, TermRow};
 
 /// Fields of one term (fixed names).
@@ -147,13 +148,30 @@ pub struct PredictorInfo {
     pub reference: Option<String>,
 }
 
-/// One design column's construction.
+/// One design column's construction, as the `design` field lists it.
 #[derive(Debug, Clone, PartialEq)]
 pub struct TermPart {
     pub predictor: Option<u32>,
     pub level: Option<String>,
     pub predictor2: Option<u32>,
     pub level2: Option<String>,
+}
+
+impl TermPart {
+    pub fn from_source(source: &ColumnSource) -> TermPart {
+        let split = |p: &SourcePart| (Some(p.predictor as u32), p.level.clone());
+        let ((predictor, level), (predictor2, level2)) = match source {
+            ColumnSource::Intercept | ColumnSource::Given => ((None, None), (None, None)),
+            ColumnSource::Main(a) => (split(a), (None, None)),
+            ColumnSource::Product(a, b) => (split(a), split(b)),
+        };
+        TermPart {
+            predictor,
+            level,
+            predictor2,
+            level2,
+        }
+    }
 }
 
 /// Everything reported for one group.
@@ -236,7 +254,7 @@ impl FitColumns {
             Some(t) => (None, Some(t)),
             None => (None, None),
         };
-        let od = stats.and_then(|s| s.overdispersion);
+        let od = stats.and_then(|s| s.extra.overdispersion);
         let values = [
             Value::Text(Some(g.status)),
             Value::Text(Some(g.family.to_string())),
@@ -386,5 +404,5 @@ impl FitColumns {
 }
 
 fn fixed_scale(fit: Option<&GlmFit>) -> bool {
-    fit.is_some_and(|f| f.fixed_scale)
+    fit.is_some_and(|f| f.scale.has_gof_tests())
 }

@@ -322,7 +322,7 @@ fn collapsed_fit_equals_the_row_level_fit() {
     close_opt("loglik", s.loglik, r.loglik.unwrap(), 1e-11, 0.0);
     close_opt("aic", s.aic, r.aic.unwrap(), 1e-11, 0.0);
     close_opt("bic", s.bic, r.bic.unwrap(), 1e-11, 0.0);
-    let (ro, so) = (r.overdispersion.unwrap(), s.overdispersion.unwrap());
+    let (ro, so) = (r.extra.overdispersion.unwrap(), s.extra.overdispersion.unwrap());
     close("overdispersion t", so.statistic, ro.statistic, 1e-8, 0.0);
     for (i, &k) in collapsed.pattern_of_row.iter().enumerate().step_by(97) {
         let pattern_exposure: f64 = (0..t.rows)

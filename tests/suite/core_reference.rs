@@ -509,7 +509,7 @@ fn extra_statistics_match_statsmodels_and_scipy() {
             SE * (1.0 + lr_stat / 10.0),
             0.0,
         );
-        let od = s.overdispersion.unwrap();
+        let od = s.extra.overdispersion.unwrap();
         close(
             &format!("{model} overdispersion t"),
             od.statistic,

@@ -1,0 +1,233 @@
+//! Iteratively reweighted least squares (Fisher scoring) with step-halving, on internally
+//! standardised columns.
+//!
+//! Method: Nelder & Wedderburn (1972); McCullagh & Nelder (1989) §2.5. Each iteration solves
+//! (X'WX) b = X'Wz with W = w·(dmu/deta)²/V(mu) and z = eta - offset + (y - mu)/(dmu/deta).
+//! A step that makes the deviance non-finite or larger is halved (up to 30 times).
+//! Convergence: relative deviance change |D_k - D_{k-1}|/(|D_k| + 0.1) < tol, or the largest
+//! coefficient step on the standardised scale below sqrt(tol).
+//!
+//! Columns are centred (when there is an intercept) and scaled to unit mean square before
+//! fitting; estimates and covariances are transformed back exactly (b = T b', V = T V' T').
+//! Aliased columns are found once, from the Cholesky pivots of X'W0X in column order.
+
+use nalgebra::DMatrix;
+
+use super::design::Design;
+use super::family::Family;
+use super::solve::{ALIAS_TOLERANCE, NormalEquations, cholesky_in_place};
+
+/// Controls for IRLS.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct FitOptions {
+    /// Iteration cap (default 100).
+    pub max_iter: usize,
+    /// Convergence tolerance on the relative deviance change (default 1e-12).
+    pub tol: f64,
+}
+
+impl Default for FitOptions {
+    fn default() -> Self {
+        FitOptions {
+            max_iter: 100,
+            tol: 1e-12,
+        }
+    }
+}
+
+/// Columns centred (with an intercept) and scaled to unit mean square.
+pub(crate) struct Standardised {
+    pub x: Vec<f64>,
+    center: Vec<f64>,
+    spread: Vec<f64>,
+    intercept: bool,
+}
+
+impl Standardised {
+    pub fn new(design: &Design) -> Self {
+        let n = design.n_rows();
+        let p = design.n_columns();
+        let intercept = design.has_intercept();
+        let mut x = Vec::with_capacity(n * p);
+        let mut center = vec![0.0; p];
+        let mut spread = vec![1.0; p];
+        for j in 0..p {
+            let col = design.column(j);
+            if intercept && j == 0 {
+                x.extend_from_slice(col);
+                continue;
+            }
+            let c = if intercept {
+                col.iter().sum::<f64>() / n as f64
+            } else {
+                0.0
+            };
+            // Root mean square of (x - c), computed relative to max |x - c| so that values
+            // near 1e200 do not overflow when squared.
+            let peak = col.iter().fold(0.0f64, |m, v| m.max((v - c).abs()));
+            let ms = col.iter().map(|v| ((v - c) / peak).powi(2)).sum::<f64>() / n as f64;
+            // A column constant after centring stays all-zero and is then found aliased.
+            let s = if peak > 0.0 && peak.is_finite() && ms > 0.0 {
+                peak * ms.sqrt()
+            } else {
+                1.0
+            };
+            x.extend(col.iter().map(|v| (v - c) / s));
+            center[j] = c;
+            spread[j] = s;
+        }
+        Standardised {
+            x,
+            center,
+            spread,
+            intercept,
+        }
+    }
+
+    /// T with b = T b' over the active columns: b_j = b'_j / s_j and, with an intercept,
+    /// b_0 = b'_0 - Σ_j c_j b'_j / s_j.
+    pub fn back_transform(&self, active: &[usize]) -> DMatrix<f64> {
+        let k = active.len();
+        let mut t = DMatrix::zeros(k, k);
+        for (a, &j) in active.iter().enumerate() {
+            if self.intercept && j == 0 {
+                t[(a, a)] = 1.0;
+            } else {
+                t[(a, a)] = 1.0 / self.spread[j];
+                if self.intercept && active[0] == 0 {
+                    t[(0, a)] = -self.center[j] / self.spread[j];
+                }
+            }
+        }
+        t
+    }
+}
+
+/// Which columns are aliased (linearly dependent on earlier ones) at prior weights `w`: the
+/// Cholesky pivots of X'WX in column order.
+pub(crate) fn aliased_columns(x: &[f64], n: usize, p: usize, w: &[f64]) -> Vec<bool> {
+    let mut aliased = vec![false; p];
+    let all: Vec<usize> = (0..p).collect();
+    let mut ne = NormalEquations::new(p);
+    ne.accumulate(x, n, &all, w, None);
+    cholesky_in_place(&mut ne.gram, p, ALIAS_TOLERANCE, Some(&mut aliased));
+    aliased
+}
+
+/// The outcome of the IRLS loop, on the standardised scale.
+pub(crate) struct IrlsRun {
+    pub beta: Vec<f64>,
+    pub eta: Vec<f64>,
+    pub mu: Vec<f64>,
+    pub iterations: usize,
+    pub converged: bool,
+    /// The weighted normal equations became singular (weights of some rows underflowed):
+    /// iteration stopped at the last good estimates.
+    pub stalled: bool,
+}
+
+/// Step-halving attempts before giving up on an iteration.
+const MAX_HALVINGS: usize = 30;
+
+#[allow(clippy::too_many_arguments)]
+pub(crate) fn irls<F: Family>(
+    family: &F,
+    x: &[f64],
+    n: usize,
+    active: &[usize],
+    y: &[f64],
+    offset: &[f64],
+    w: &[f64],
+    opts: FitOptions,
+) -> Option<IrlsRun> {
+    let k = active.len();
+    let mut mu = vec![0.0; n];
+    family.start(y, offset, w, &mut mu);
+    let mut eta: Vec<f64> = mu.iter().map(|&m| family.link(m)).collect();
+    let mut ww = vec![0.0; n];
+    let mut z = vec![0.0; n];
+    let mut ne = NormalEquations::new(k);
+    let mut beta = vec![0.0; k];
+    let mut deviance = f64::INFINITY;
+    let mut trial_eta = vec![0.0; n];
+    let mut trial_mu = vec![0.0; n];
+    let mut converged = false;
+    let mut stalled = false;
+    let mut iterations = 0;
+    let constant = family.deviance_constant(y, w);
+
+    while iterations < opts.max_iter {
+        iterations += 1;
+        for i in 0..n {
+            let d = family.mu_eta_at(eta[i], mu[i]);
+            let v = family.variance(mu[i]);
+            if d > 0.0 && v > 0.0 && d.is_finite() {
+                ww[i] = w[i] * d * d / v;
+                z[i] = eta[i] - offset[i] + (y[i] - mu[i]) / d;
+            } else {
+                ww[i] = 0.0;
+                z[i] = eta[i] - offset[i];
+            }
+        }
+        ne.accumulate(x, n, active, &ww, Some(&z));
+        if !ne.factor() {
+            stalled = true;
+            break;
+        }
+        ne.solve();
+        let mut candidate = ne.rhs.clone();
+        let mut trial_dev = f64::NAN;
+        let first = iterations == 1;
+        for halving in 0..=MAX_HALVINGS {
+            linear_predictor(x, n, active, &candidate, offset, &mut trial_eta);
+            for i in 0..n {
+                trial_mu[i] = family.inverse_link(trial_eta[i]);
+            }
+            trial_dev = family.step_deviance(y, &trial_eta, &trial_mu, w, constant);
+            let acceptable = trial_dev.is_finite() && (first || trial_dev <= deviance + 1e-9 * (deviance.abs() + 0.1));
+            if acceptable || halving == MAX_HALVINGS {
+                break;
+            }
+            for (c, b) in candidate.iter_mut().zip(&beta) {
+                *c = 0.5 * (*c + b);
+            }
+        }
+        if !trial_dev.is_finite() {
+            return None;
+        }
+        let max_step = candidate
+            .iter()
+            .zip(&beta)
+            .map(|(c, b)| (c - b).abs())
+            .fold(0.0, f64::max);
+        let relative_change = (trial_dev - deviance).abs() / (trial_dev.abs() + 0.1);
+        beta.copy_from_slice(&candidate);
+        std::mem::swap(&mut eta, &mut trial_eta);
+        std::mem::swap(&mut mu, &mut trial_mu);
+        deviance = trial_dev;
+        if !first && (relative_change < opts.tol || max_step < opts.tol.sqrt()) {
+            converged = true;
+            break;
+        }
+    }
+    Some(IrlsRun {
+        beta,
+        stalled,
+        eta,
+        mu,
+        iterations,
+        converged,
+    })
+}
+
+/// eta = offset + X[:, active]·b.
+fn linear_predictor(x: &[f64], n: usize, active: &[usize], b: &[f64], offset: &[f64], eta: &mut [f64]) {
+    eta.copy_from_slice(offset);
+    for (a, &j) in active.iter().enumerate() {
+        let col = &x[j * n..(j + 1) * n];
+        let coef = b[a];
+        for (e, &v) in eta.iter_mut().zip(col) {
+            *e += coef * v;
+        }
+    }
+}
