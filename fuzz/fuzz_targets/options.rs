@@ -2,5 +2,5 @@
 #![no_main]
 
 libfuzzer_sys::fuzz_target!(|data: &[u8]| {
-    ratesheet::sql::fuzzing::apply_arbitrary_options(data);
+    ratesheet::sql::model::fuzzing::apply_arbitrary_options(data);
 });

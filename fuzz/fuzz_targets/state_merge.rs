@@ -2,5 +2,5 @@
 #![no_main]
 
 libfuzzer_sys::fuzz_target!(|data: &[u8]| {
-    ratesheet::sql::fuzzing::merge_arbitrary_state(data);
+    ratesheet::sql::model::fuzzing::merge_arbitrary_state(data);
 });

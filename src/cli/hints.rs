@@ -76,7 +76,7 @@ fn integer_division(plan: &LogicalPlan) -> Option<String> {
                 {
                     let whole = |x: &Expr| x.get_type(&input).is_ok_and(|t| t.is_integer());
                     if whole(left) && whole(right) {
-                        found = Some(crate::sql::spec::render(sub));
+                        found = Some(crate::sql::model::spec::render(sub));
                         return Ok(TreeNodeRecursion::Stop);
                     }
                 }

@@ -5,6 +5,7 @@
 //! with a chosen number of significant digits, p-values as `<1e-16` below that, NULL as `∅`,
 //! a fit struct summarised in one cell (status, rows, deviance, dispersion, number of terms).
 
+use crate::sql::model::fields::{FitField, FitReader, RecordTable, TermField};
 use datafusion::arrow::array::{Array, ArrayRef, AsArray, RecordBatch, StructArray};
 use datafusion::arrow::datatypes::{DataType, Float64Type};
 use datafusion::arrow::util::display::{ArrayFormatter, FormatOptions};
@@ -136,42 +137,26 @@ pub fn format_p(v: f64) -> String {
 }
 
 fn is_fit(s: &StructArray) -> bool {
-    s.column_by_name("status").is_some() && s.column_by_name("terms").is_some()
+    FitReader::of(s).is_some()
 }
 
 /// One-cell summary of a fit struct.
 fn fit_summary(s: &StructArray, r: usize, digits: usize) -> String {
-    let text = |n: &str| {
-        s.column_by_name(n)
-            .and_then(|c| c.as_string_opt::<i32>())
-            .filter(|c| !c.is_null(r))
-            .map(|c| c.value(r).to_string())
+    let Some(fit) = FitReader::of(s) else {
+        return NULL_MARK.into();
     };
-    let float = |n: &str| {
-        s.column_by_name(n)
-            .and_then(|c| c.as_primitive_opt::<Float64Type>())
-            .filter(|c| !c.is_null(r))
-            .map(|c| format_number(c.value(r), digits))
-            .unwrap_or_else(|| NULL_MARK.into())
+    let float = |f: FitField| {
+        fit.float(f, r)
+            .map_or_else(|| NULL_MARK.into(), |v| format_number(v, digits))
     };
-    let uint = |n: &str| {
-        s.column_by_name(n)
-            .and_then(|c| c.as_primitive_opt::<datafusion::arrow::datatypes::UInt64Type>())
-            .filter(|c| !c.is_null(r))
-            .map(|c| c.value(r).to_string())
-            .unwrap_or_else(|| NULL_MARK.into())
-    };
-    let terms = s
-        .column_by_name("terms")
-        .and_then(|c| c.as_list_opt::<i32>())
-        .map_or(0, |l| l.value_length(r));
     format!(
         "[{}] rows {} · deviance {} · dispersion {} · {} terms",
-        text("status").unwrap_or_default(),
-        uint("n_used"),
-        float("deviance"),
-        float("dispersion"),
-        terms
+        fit.text(FitField::Status, r).unwrap_or_default(),
+        fit.uint(FitField::NUsed, r)
+            .map_or_else(|| NULL_MARK.into(), |n| n.to_string()),
+        float(FitField::Deviance),
+        float(FitField::Dispersion),
+        fit.term_range(r).len()
     )
 }
 
@@ -354,16 +339,16 @@ fn formatters<'a>(b: &'a RecordBatch, options: &'a FormatOptions<'a>) -> Result<
 const CARD_ROWS: usize = 12;
 
 /// Term fields shown in a card, in order.
-const CARD_FIELDS: &[&str] = &[
-    "term",
-    "estimate",
-    "std_error",
-    "z",
-    "p_value",
-    "rate_ratio",
-    "rr_low",
-    "rr_high",
-    "flag",
+const CARD_FIELDS: &[TermField] = &[
+    TermField::Term,
+    TermField::Estimate,
+    TermField::StdError,
+    TermField::Z,
+    TermField::PValue,
+    TermField::RateRatio,
+    TermField::RrLow,
+    TermField::RrHigh,
+    TermField::Flag,
 ];
 
 /// For each fit cell: a heading naming the row (its other columns) and the fit's term table.
@@ -398,14 +383,13 @@ fn fit_cards(batches: &[RecordBatch], style: &Style) -> Result<String> {
                     format!("{} — ", label.join(", "))
                 };
                 out.push_str(&format!("\n▸ {heading}{}\n", fit_summary(fit, r, style.digits)));
-                let Some(terms) = fit.column_by_name("terms").and_then(|c| c.as_list_opt::<i32>()) else {
+                let Some(reader) = FitReader::of(fit) else {
                     continue;
                 };
-                let t = terms.value(r);
-                let t = t.as_struct();
+                let t = reader.terms_of(r);
                 let columns: Vec<(String, ArrayRef)> = CARD_FIELDS
                     .iter()
-                    .filter_map(|n| t.column_by_name(n).map(|c| (n.to_string(), c.clone())))
+                    .filter_map(|f| t.column_by_name(f.name()).map(|c| (f.name().to_string(), c.clone())))
                     .collect();
                 let batch = RecordBatch::try_from_iter(columns)?;
                 let table = text_table(&[batch], style)?;

@@ -9,19 +9,15 @@ use datafusion::arrow::datatypes::{DataType, Float64Type};
 use datafusion::arrow::util::display::{ArrayFormatter, FormatOptions};
 use rust_xlsxwriter::Workbook;
 
-const FIT_FIELDS: &[&str] = &["status", "n_used", "deviance", "dispersion", "overdispersion_p"];
-const TERM_FIELDS: &[&str] = &[
-    "term",
-    "estimate",
-    "std_error",
-    "z",
-    "p_value",
-    "ci_low",
-    "ci_high",
-    "rate_ratio",
-    "rr_low",
-    "rr_high",
-    "flag",
+use crate::sql::model::fields::{FitField, FitReader, RecordTable, TermField};
+
+/// The fit-level fields repeated on every term row (the term's own fields follow, all of them).
+const FIT_FIELDS: &[FitField] = &[
+    FitField::Status,
+    FitField::NUsed,
+    FitField::Deviance,
+    FitField::Dispersion,
+    FitField::OverdispersionP,
 ];
 
 /// One output cell.
@@ -48,9 +44,7 @@ fn cell(a: &ArrayRef, r: usize) -> Cell {
 }
 
 fn is_fit(a: &ArrayRef) -> bool {
-    matches!(a.data_type(), DataType::Struct(_))
-        && a.as_struct().column_by_name("terms").is_some()
-        && a.as_struct().column_by_name("status").is_some()
+    a.as_struct_opt().and_then(FitReader::of).is_some()
 }
 
 /// Header and rows of the flattened result.
@@ -64,8 +58,8 @@ fn flatten(batches: &[RecordBatch]) -> (Vec<String>, Vec<Vec<Cell>>) {
     let mut header: Vec<String> = plain.iter().map(|&j| schema.field(j).name().clone()).collect();
     for &j in &fits {
         let name = schema.field(j).name();
-        header.extend(FIT_FIELDS.iter().map(|f| format!("{name}.{f}")));
-        header.extend(TERM_FIELDS.iter().map(|f| format!("{name}.{f}")));
+        header.extend(FIT_FIELDS.iter().map(|f| format!("{name}.{}", f.name())));
+        header.extend(TermField::all().iter().map(|f| format!("{name}.{}", f.name())));
     }
     let mut rows = Vec::new();
     for b in batches {
@@ -81,14 +75,9 @@ fn flatten(batches: &[RecordBatch]) -> (Vec<String>, Vec<Vec<Cell>>) {
                 .iter()
                 .map(|&j| {
                     let fit = b.column(j).as_struct();
-                    let terms = (!fit.is_null(r))
-                        .then(|| {
-                            fit.column_by_name("terms")
-                                .and_then(|c| c.as_list_opt::<i32>())
-                                .map(|l| l.value(r))
-                        })
-                        .flatten()
-                        .map(|t| t.as_struct().clone());
+                    let terms = FitReader::of(fit)
+                        .filter(|reader| !reader.is_null(r))
+                        .map(|reader| reader.terms_of(r));
                     (fit, terms)
                 })
                 .collect();
@@ -102,11 +91,11 @@ fn flatten(batches: &[RecordBatch]) -> (Vec<String>, Vec<Vec<Cell>>) {
                 let mut row: Vec<Cell> = base.iter().map(|a| cell(a, 0)).collect();
                 for (fit, terms) in &term_lists {
                     for f in FIT_FIELDS {
-                        row.push(fit.column_by_name(f).map_or(Cell::Empty, |c| cell(c, r)));
+                        row.push(fit.column_by_name(f.name()).map_or(Cell::Empty, |c| cell(c, r)));
                     }
-                    for f in TERM_FIELDS {
+                    for f in TermField::all() {
                         row.push(match terms {
-                            Some(t) if k < t.len() => t.column_by_name(f).map_or(Cell::Empty, |c| cell(c, k)),
+                            Some(t) if k < t.len() => t.column_by_name(f.name()).map_or(Cell::Empty, |c| cell(c, k)),
                             _ => Cell::Empty,
                         });
                     }

@@ -64,7 +64,25 @@ impl Sums {
         self.e
     }
 
-    /// The sums as an array (for state encoding), in a fixed order; [`Sums::from_array`] inverts it.
+    /// The names of the sums, in the order of [`Sums::to_array`] (for state encoding with named
+    /// fields).
+    pub const NAMES: [&'static str; 13] = [
+        "rows",
+        "y",
+        "e",
+        "yy",
+        "ye",
+        "ee",
+        "y_log_y",
+        "y_log_e",
+        "log_gamma",
+        "yy_over_e",
+        "a2_over_e2",
+        "ay_over_e",
+        "a",
+    ];
+
+    /// The sums as an array, in the order of [`Sums::NAMES`]; [`Sums::from_array`] inverts it.
     pub fn to_array(&self) -> [f64; 13] {
         [
             self.rows as f64,

@@ -40,6 +40,14 @@ impl FamilyKind {
     pub fn parse(name: &str) -> Option<FamilyKind> {
         FamilyKind::ALL.into_iter().find(|k| k.name() == name)
     }
+
+    /// The family itself, for its properties (fits dispatch on the kind to stay monomorphic).
+    pub fn family(self) -> &'static dyn Family {
+        match self {
+            FamilyKind::Poisson => &Poisson,
+            FamilyKind::Gaussian => &Gaussian,
+        }
+    }
 }
 
 /// How a family's dispersion is handled; it decides the reference distribution of Wald

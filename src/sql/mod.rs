@@ -1,25 +1,13 @@
 //! The SQL surface: ratesheet's aggregate and scalar functions for DataFusion.
 //!
-//! Each SQL function lives in its own file with its signature, evaluation and documentation.
-//! [`register_functions`] registers all of them, and the `ratesheet.*` session options, on a
-//! DataFusion session.
+//! Two folders: [`model`] is the machinery of the fit aggregates (the typed model spec
+//! resolved at planning, batch decoding, the group buffers and their state codec, evaluation,
+//! the fit struct's field table); [`functions`] holds the SQL functions, one file each, with
+//! their signature, evaluation and documentation. [`register_functions`] registers all of
+//! them, the `ratesheet.*` session options and the `unnest` planning correction on a session.
 
-mod batch;
-mod buffer;
-pub mod fit_aggregate;
-pub mod fit_expected;
-pub mod fit_lr_test;
-pub mod fit_term;
-#[doc(hidden)]
-pub mod fuzzing;
-pub mod interaction;
-pub mod options;
-mod patterns;
-pub mod rate_interval;
-pub mod rate_ratio_test;
-pub mod result;
-mod scalar_util;
-pub mod spec;
+pub mod functions;
+pub mod model;
 pub mod unnest_keys;
 
 use datafusion::error::Result;
@@ -28,26 +16,26 @@ use datafusion::execution::session_state::{SessionState, SessionStateBuilder};
 use datafusion::logical_expr::{AggregateUDF, ScalarUDF};
 use datafusion::prelude::SessionContext;
 
-pub use options::RatesheetConfig;
+pub use model::options::RatesheetConfig;
 
 /// All aggregate functions ratesheet adds.
 pub fn aggregate_functions() -> Vec<AggregateUDF> {
     vec![
-        fit_aggregate::poisson_fit(),
-        fit_aggregate::poisson_count_fit(),
-        fit_aggregate::linear_fit(),
+        functions::poisson_fit::poisson_fit(),
+        functions::poisson_count_fit::poisson_count_fit(),
+        functions::linear_fit::linear_fit(),
     ]
 }
 
 /// All scalar functions ratesheet adds.
 pub fn scalar_functions() -> Vec<ScalarUDF> {
     vec![
-        fit_term::fit_term(),
-        fit_expected::fit_expected(),
-        fit_lr_test::fit_lr_test(),
-        rate_interval::rate_interval(),
-        rate_ratio_test::rate_ratio_test(),
-        interaction::interaction(),
+        functions::fit_term::fit_term(),
+        functions::fit_expected::fit_expected(),
+        functions::fit_comparison::fit_lr_test(),
+        functions::rate_interval::rate_interval(),
+        functions::rate_comparison::rate_ratio_test(),
+        functions::interaction::interaction(),
     ]
 }
 

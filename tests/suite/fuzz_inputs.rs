@@ -2,7 +2,7 @@
 //! every test run covers them: arbitrary aggregate states and options strings must give errors,
 //! never panics.
 
-use ratesheet::sql::fuzzing::{apply_arbitrary_options, merge_arbitrary_state};
+use ratesheet::sql::model::fuzzing::{apply_arbitrary_options, merge_arbitrary_state};
 
 use crate::support::Seeded;
 

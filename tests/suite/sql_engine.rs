@@ -8,12 +8,13 @@
 use std::sync::Arc;
 
 use datafusion::arrow::array::{Array, AsArray, RecordBatch, StructArray};
-use datafusion::arrow::datatypes::Float64Type;
 use datafusion::execution::memory_pool::FairSpillPool;
 use datafusion::execution::runtime_env::RuntimeEnvBuilder;
 use datafusion::logical_expr::Partitioning;
 use datafusion::prelude::{CsvReadOptions, SessionConfig, SessionContext, col};
 use serde_json::Value;
+
+use ratesheet::sql::model::fields::{FitField, FitReader, TermField};
 
 use crate::support::{close, f, fixture_path, load_json};
 
@@ -60,27 +61,24 @@ fn fits(batches: &[RecordBatch]) -> Vec<(String, StructArray, usize)> {
     out
 }
 
-fn fit_f64(fit: &StructArray, field: &str, r: usize) -> f64 {
-    fit.column_by_name(field)
-        .unwrap()
-        .as_primitive::<Float64Type>()
-        .value(r)
+/// A fit-level number that must be present (NULL fails the test).
+fn fit_f64(fit: &StructArray, field: FitField, r: usize) -> f64 {
+    FitReader::of(fit)
+        .expect("a fit column")
+        .float(field, r)
+        .unwrap_or_else(|| panic!("{field:?} is NULL in row {r}"))
 }
 
-/// (term, estimate, std_error) of row `r`.
+/// (term, estimate, std_error) of row `r`, read through the library's fit reader.
 fn terms(fit: &StructArray, r: usize) -> Vec<(String, Option<f64>, Option<f64>)> {
-    let list = fit.column_by_name("terms").unwrap().as_list::<i32>();
-    let t = list.value(r);
-    let t = t.as_struct();
-    let names = t.column_by_name("term").unwrap().as_string::<i32>();
-    let est = t.column_by_name("estimate").unwrap().as_primitive::<Float64Type>();
-    let se = t.column_by_name("std_error").unwrap().as_primitive::<Float64Type>();
-    (0..t.len())
+    let reader = FitReader::of(fit).expect("a fit column");
+    reader
+        .term_range(r)
         .map(|i| {
             (
-                names.value(i).to_string(),
-                (!est.is_null(i)).then(|| est.value(i)),
-                (!se.is_null(i)).then(|| se.value(i)),
+                reader.term_text(TermField::Term, i).unwrap().to_string(),
+                reader.term_float(TermField::Estimate, i),
+                reader.term_float(TermField::StdError, i),
             )
         })
         .collect()
@@ -96,15 +94,15 @@ fn sql_name(reference_term: &str) -> String {
 fn check_against(label: &str, fit: &StructArray, r: usize, block: &Value) {
     // (our field, reference field, relative tolerance, absolute tolerance)
     let statistics = [
-        ("deviance", "deviance", 1e-8, 1e-11),
-        ("pearson_chi2", "pearson_chi2", 1e-8, 1e-11),
-        ("loglik", "llf", 1e-8, 0.0),
-        ("aic", "aic", 1e-8, 0.0),
-        ("deviance_p", "deviance_gof_p_value", 1e-7, 1e-15),
+        (FitField::Deviance, "deviance", 1e-8, 1e-11),
+        (FitField::PearsonChi2, "pearson_chi2", 1e-8, 1e-11),
+        (FitField::Loglik, "llf", 1e-8, 0.0),
+        (FitField::Aic, "aic", 1e-8, 0.0),
+        (FitField::DevianceP, "deviance_gof_p_value", 1e-7, 1e-15),
     ];
     for (ours, theirs, rel, abs) in statistics {
         close(
-            &format!("{label} {ours}"),
+            &format!("{label} {ours:?}"),
             fit_f64(fit, ours, r),
             f(&block[theirs]),
             rel,
@@ -168,9 +166,9 @@ fn fingerprint(batches: &[RecordBatch]) -> Vec<(String, Vec<f64>)> {
         .into_iter()
         .map(|(k, fit, r)| {
             let mut v = vec![
-                fit_f64(&fit, "deviance", r),
-                fit_f64(&fit, "pearson_chi2", r),
-                fit_f64(&fit, "loglik", r),
+                fit_f64(&fit, FitField::Deviance, r),
+                fit_f64(&fit, FitField::PearsonChi2, r),
+                fit_f64(&fit, FitField::Loglik, r),
             ];
             for (_, est, se) in terms(&fit, r) {
                 v.push(est.unwrap_or(f64::NAN));
@@ -408,12 +406,12 @@ async fn run_example(ctx: &SessionContext, name: &str, sql: Option<&str>) {
 #[tokio::test]
 async fn pattern_sums_and_row_buffers_give_the_same_fits() {
     let fields = [
-        "deviance",
-        "pearson_chi2",
-        "loglik",
-        "aic",
-        "dispersion",
-        "null_deviance",
+        FitField::Deviance,
+        FitField::PearsonChi2,
+        FitField::Loglik,
+        FitField::Aic,
+        FitField::Dispersion,
+        FitField::NullDeviance,
     ];
     for partitions in [1, 2, 8] {
         let ctx = context(partitions);
@@ -438,7 +436,7 @@ async fn pattern_sums_and_row_buffers_give_the_same_fits() {
             assert_eq!(ka, kb);
             for f in fields {
                 let (a, b) = (fit_f64(fa, f, *ra), fit_f64(fb, f, *rb));
-                assert!((a - b).abs() <= 1e-9 * (1.0 + b.abs()), "{ka} {f}: {a} vs {b}");
+                assert!((a - b).abs() <= 1e-9 * (1.0 + b.abs()), "{ka} {f:?}: {a} vs {b}");
             }
             for ((na, ea, sa), (nb, eb, sb)) in terms(fa, *ra).iter().zip(terms(fb, *rb).iter()) {
                 assert_eq!(na, nb);

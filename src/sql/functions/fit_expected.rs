@@ -15,8 +15,11 @@ use datafusion::logical_expr::{
     ColumnarValue, Documentation, ScalarFunctionArgs, ScalarUDF, ScalarUDFImpl, Signature, Volatility,
 };
 
-use super::fit_aggregate::DOC_SECTION;
-use super::scalar_util::{FitView, arg_arrays, exec_error, floats, text_at, texts, u32_at};
+use super::args::{arg_arrays, exec_error, floats, texts};
+use crate::glm::{FamilyKind, TermState};
+use crate::sql::model::aggregate::DOC_SECTION;
+use crate::sql::model::fields::{DesignField, FitReader, PredictorField, TermField};
+use crate::sql::model::spec::PredictorKind;
 
 #[derive(Debug, PartialEq, Eq, Hash)]
 pub struct FitExpected {
@@ -66,15 +69,18 @@ impl ScalarUDFImpl for FitExpected {
     }
     fn invoke_with_args(&self, args: ScalarFunctionArgs) -> Result<ColumnarValue> {
         let a = arg_arrays(&args)?;
-        let view = FitView::new("fit_expected", &a[0])?;
+        let view = FitReader::new("fit_expected", &a[0])?;
         let exposure = floats(&a[1])?;
+        // The same rule as the fits: text, boolean and dictionary values are factor levels.
         let values: Vec<Value> = a[2..]
             .iter()
-            .map(|x| {
-                Ok(if x.data_type().is_numeric() {
-                    Value::Number(floats(x)?)
-                } else {
+            .enumerate()
+            .map(|(k, x)| {
+                let kind = PredictorKind::of("fit_expected", &format!("{}", k + 1), x.data_type())?;
+                Ok(if kind.is_factor() {
                     Value::Text(texts(x)?)
+                } else {
+                    Value::Number(floats(x)?)
                 })
             })
             .collect::<Result<_>>()?;
@@ -89,8 +95,8 @@ impl ScalarUDFImpl for FitExpected {
     }
 }
 
-fn expected_row(view: &FitView<'_>, exposure: &Float64Array, values: &[Value], r: usize) -> Result<Option<f64>> {
-    if view.fits.is_null(r) || exposure.is_null(r) {
+fn expected_row(view: &FitReader<'_>, exposure: &Float64Array, values: &[Value], r: usize) -> Result<Option<f64>> {
+    if view.is_null(r) || exposure.is_null(r) {
         return Ok(None);
     }
     let predictors = view.predictor_range(r);
@@ -103,8 +109,8 @@ fn expected_row(view: &FitView<'_>, exposure: &Float64Array, values: &[Value], r
     }
     // Check kinds and find unseen factor levels.
     for (k, p) in predictors.clone().enumerate() {
-        let name = text_at(view.predictor_values, "name", p).unwrap_or("?");
-        let factor = text_at(view.predictor_values, "kind", p) == Some("factor");
+        let name = view.predictor_text(PredictorField::Name, p).unwrap_or("?");
+        let factor = view.predictor_is_factor(p);
         match (&values[k], factor) {
             (Value::Number(v), false) if v.is_null(r) => return Ok(None),
             (Value::Number(_), false) => {}
@@ -113,12 +119,12 @@ fn expected_row(view: &FitView<'_>, exposure: &Float64Array, values: &[Value], r
                     return Ok(None);
                 }
                 let level = v.value(r);
-                let known = text_at(view.predictor_values, "reference", p) == Some(level)
+                let known = view.predictor_text(PredictorField::Reference, p) == Some(level)
                     || view.design_range(r).any(|d| {
-                        (u32_at(view.design_values, "predictor", d) == Some(k as u32)
-                            && text_at(view.design_values, "level", d) == Some(level))
-                            || (u32_at(view.design_values, "predictor2", d) == Some(k as u32)
-                                && text_at(view.design_values, "level2", d) == Some(level))
+                        (view.design_index(DesignField::Predictor, d) == Some(k as u32)
+                            && view.design_text(DesignField::Level, d) == Some(level))
+                            || (view.design_index(DesignField::Predictor2, d) == Some(k as u32)
+                                && view.design_text(DesignField::Level2, d) == Some(level))
                     });
                 if !known {
                     return Ok(None);
@@ -159,20 +165,23 @@ fn expected_row(view: &FitView<'_>, exposure: &Float64Array, values: &[Value], r
     let mut eta = 0.0;
     for (t, d) in terms.zip(design) {
         let x = part_value(
-            u32_at(view.design_values, "predictor", d),
-            text_at(view.design_values, "level", d),
-        ) * match u32_at(view.design_values, "predictor2", d) {
+            view.design_index(DesignField::Predictor, d),
+            view.design_text(DesignField::Level, d),
+        ) * match view.design_index(DesignField::Predictor2, d) {
             None => 1.0,
-            Some(k) => part_value(Some(k), text_at(view.design_values, "level2", d)),
+            Some(k) => part_value(Some(k), view.design_text(DesignField::Level2, d)),
         };
-        match (view.term_float("estimate", t), view.term_text("flag", t)) {
+        match (
+            view.term_float(TermField::Estimate, t),
+            view.term_text(TermField::Flag, t),
+        ) {
             (Some(b), _) => eta += b * x,
-            (None, Some("aliased")) => {}
+            (None, Some(flag)) if flag == TermState::Aliased.flag().unwrap_or_default() => {}
             (None, _) if x == 0.0 => {}
             (None, _) => return Ok(None),
         }
     }
-    Ok(Some(if view.fit_text("family", r) == Some("gaussian") {
+    Ok(Some(if view.family(r) == Some(FamilyKind::Gaussian) {
         eta
     } else {
         exposure.value(r) * eta.exp()

@@ -10,9 +10,9 @@ use datafusion::logical_expr::{
     ColumnarValue, Documentation, ScalarFunctionArgs, ScalarUDF, ScalarUDFImpl, Signature, Volatility,
 };
 
-use super::fit_aggregate::DOC_SECTION;
-use super::scalar_util::{arg_arrays, exec_error, floats, numeric_args};
+use super::args::{arg_arrays, exec_error, floats, numeric_args};
 use crate::glm::closed_form::{rate_ratio_exact, rate_ratio_wald};
+use crate::sql::model::aggregate::DOC_SECTION;
 
 const NUMBERS: &[&str] = &["ratio", "low", "high", "p_value"];
 

@@ -14,8 +14,8 @@ use datafusion::logical_expr::{
     ColumnarValue, Documentation, ScalarFunctionArgs, ScalarUDF, ScalarUDFImpl, Signature, Volatility,
 };
 
-use super::fit_aggregate::DOC_SECTION;
-use super::scalar_util::arg_arrays;
+use super::args::arg_arrays;
+use crate::sql::model::aggregate::DOC_SECTION;
 
 #[derive(Debug, PartialEq, Eq, Hash)]
 pub struct Interaction {

@@ -2,7 +2,7 @@
 
 use std::sync::{Arc, LazyLock};
 
-use datafusion::arrow::array::{Array, ArrayRef, Float64Array, StringArray, StructArray};
+use datafusion::arrow::array::{ArrayRef, Float64Array, StringArray, StructArray};
 use datafusion::arrow::datatypes::{DataType, Field, Fields};
 use datafusion::error::Result;
 use datafusion::logical_expr::{
@@ -10,16 +10,18 @@ use datafusion::logical_expr::{
 };
 use statrs::distribution::{ContinuousCDF, FisherSnedecor};
 
-use super::fit_aggregate::DOC_SECTION;
-use super::result::Range;
-use super::scalar_util::{FitView, arg_arrays, exec_error};
+use super::args::{arg_arrays, exec_error};
+use crate::glm::SeType;
 use crate::glm::distributions::chi2_sf;
+use crate::sql::model::aggregate::DOC_SECTION;
+use crate::sql::model::fields::Range;
+use crate::sql::model::fields::{FitField, FitReader, TermField};
 
 /// The result fields: `chi2` (likelihood-ratio test) or `f` (F test, when the bigger fit has
-/// quasi standard errors) with `df` (and `df_resid`, the F test's denominator), `p_value`,
+/// quasi standard errors) with `df` (and `df_denominator`, the F test's), `p_value`,
 /// `method` (`lr` or `f`) and `nesting` (`terms` when the smaller fit's terms are all in the
 /// bigger one, `assumed` when the caller vouches for it).
-const FLOAT_FIELDS: &[&str] = &["chi2", "f", "df", "df_resid", "p_value"];
+const FLOAT_FIELDS: &[&str] = &["chi2", "f", "df", "df_denominator", "p_value"];
 const TEXT_FIELDS: &[&str] = &["method", "nesting"];
 
 fn result_fields() -> Fields {
@@ -53,11 +55,11 @@ impl ScalarUDFImpl for FitLrTest {
     }
     fn invoke_with_args(&self, args: ScalarFunctionArgs) -> Result<ColumnarValue> {
         let a = arg_arrays(&args)?;
-        let big = FitView::new("fit_lr_test", &a[0])?;
-        let small = FitView::new("fit_lr_test", &a[1])?;
+        let big = FitReader::new("fit_lr_test", &a[0])?;
+        let small = FitReader::new("fit_lr_test", &a[1])?;
         let mut tests = Vec::with_capacity(args.number_rows);
         for r in 0..args.number_rows {
-            tests.push(if big.fits.is_null(r) || small.fits.is_null(r) {
+            tests.push(if big.is_null(r) || small.is_null(r) {
                 None
             } else {
                 compare(&big, &small, r)?
@@ -122,29 +124,32 @@ struct Comparison {
 /// estimated coefficients or more) or that fits better (a smaller deviance). Nesting itself
 /// cannot be proved from two fit structs; when the term names do not nest (a linear trend
 /// against its factor, merged levels) the test is computed with `nesting` = `assumed`.
-fn compare(big: &FitView<'_>, small: &FitView<'_>, r: usize) -> Result<Option<Comparison>> {
-    let same = |name: &str| match (big.fit_float(name, r), small.fit_float(name, r)) {
+fn compare(big: &FitReader<'_>, small: &FitReader<'_>, r: usize) -> Result<Option<Comparison>> {
+    let same = |field: FitField| match (big.float(field, r), small.float(field, r)) {
         (Some(x), Some(y)) => (x - y).abs() <= 1e-9 * x.abs().max(y.abs()),
         (None, None) => true,
         _ => false,
     };
-    if big.fit_text("family", r) != small.fit_text("family", r) {
+    if big.family(r) != small.family(r) {
         return Err(exec_error("fit_lr_test: the two fits are of different families".into()));
     }
-    if big.fit_uint("n_used", r) != small.fit_uint("n_used", r) || !same("total_count") || !same("total_exposure") {
+    if big.uint(FitField::NUsed, r) != small.uint(FitField::NUsed, r)
+        || !same(FitField::TotalCount)
+        || !same(FitField::TotalExposure)
+    {
         return Err(exec_error(format!(
             "fit_lr_test: the fits used different rows (n_used {:?} vs {:?}); compare fits of the same rows",
-            big.fit_uint("n_used", r),
-            small.fit_uint("n_used", r)
+            big.uint(FitField::NUsed, r),
+            small.uint(FitField::NUsed, r)
         )));
     }
     let (Some(lb), Some(ls), Some(rb), Some(rs), Some(db), Some(ds)) = (
-        big.fit_float("loglik", r),
-        small.fit_float("loglik", r),
-        big.fit_uint("rank", r),
-        small.fit_uint("rank", r),
-        big.fit_float("deviance", r),
-        small.fit_float("deviance", r),
+        big.float(FitField::Loglik, r),
+        small.float(FitField::Loglik, r),
+        big.uint(FitField::Rank, r),
+        small.uint(FitField::Rank, r),
+        big.float(FitField::Deviance, r),
+        small.float(FitField::Deviance, r),
     ) else {
         return Ok(None);
     };
@@ -160,15 +165,19 @@ fn compare(big: &FitView<'_>, small: &FitView<'_>, r: usize) -> Result<Option<Co
              of the first; give the bigger fit first"
         )));
     }
-    let big_terms: Vec<&str> = big.term_range(r).filter_map(|i| big.term_text("term", i)).collect();
+    let big_terms: Vec<&str> = big
+        .term_range(r)
+        .filter_map(|i| big.term_text(TermField::Term, i))
+        .collect();
     let nested = small
         .term_range(r)
-        .filter_map(|i| small.term_text("term", i))
+        .filter_map(|i| small.term_text(TermField::Term, i))
         .all(|t| big_terms.contains(&t));
     let nesting = if nested { "terms" } else { "assumed" };
     let df = (rb - rs) as f64;
-    if big.fit_text("se_type", r) == Some("quasi") {
-        let (Some(dispersion), Some(df_resid)) = (big.fit_float("dispersion", r), big.fit_uint("df_resid", r)) else {
+    if big.text(FitField::SeType, r) == Some(SeType::Quasi.name()) {
+        let (Some(dispersion), Some(df_resid)) = (big.float(FitField::Dispersion, r), big.uint(FitField::DfResid, r))
+        else {
             return Ok(None);
         };
         if !(dispersion > 0.0) || df_resid == 0 {
@@ -202,10 +211,10 @@ static DOC: LazyLock<Documentation> = LazyLock::new(|| {
     Documentation::builder(
         DOC_SECTION,
         "Compares a bigger fit with a smaller one that is a special case of it, both fitted to the same rows. \
-         Returns {chi2, f, df, df_resid, p_value, method, nesting}. method 'lr': chi2 = 2 (loglik_bigger - \
+         Returns {chi2, f, df, df_denominator, p_value, method, nesting}. method 'lr': chi2 = 2 (loglik_bigger - \
          loglik_smaller) (the deviance difference for Poisson fits) on df = the difference in estimated \
          coefficients. method 'f' (when the bigger fit has se=quasi): f = (deviance_smaller - deviance_bigger) / \
-         (df * dispersion_bigger) on (df, df_resid of the bigger fit). nesting is 'terms' when every term of \
+         (df * dispersion_bigger) on (df, df_denominator = df_resid of the bigger fit). nesting is 'terms' when every term of \
          the smaller fit is in the bigger one, and 'assumed' otherwise (a linear trend against its factor, \
          merged levels): the test is then only valid if the smaller model really is a special case. Refuses \
          fits of other families or other rows, and a second fit with as many coefficients or a smaller deviance.",

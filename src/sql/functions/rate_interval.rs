@@ -9,9 +9,9 @@ use datafusion::logical_expr::{
     ColumnarValue, Documentation, ScalarFunctionArgs, ScalarUDF, ScalarUDFImpl, Signature, Volatility,
 };
 
-use super::fit_aggregate::DOC_SECTION;
-use super::scalar_util::{arg_arrays, exec_error, float_struct, float_struct_type, floats, numeric_args};
+use super::args::{arg_arrays, exec_error, float_struct, float_struct_type, floats, numeric_args};
 use crate::glm::closed_form;
+use crate::sql::model::aggregate::DOC_SECTION;
 
 const FIELDS: &[&str] = &["rate", "low", "high"];
 

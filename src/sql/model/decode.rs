@@ -4,7 +4,9 @@
 //! exactly up to 2^53); text and boolean predictors become codes in a per-predictor
 //! [`Dictionary`] owned by the buffer (strings are read in place, whatever their Arrow string
 //! layout, and interned once per distinct value and batch position). Rows are then checked in
-//! one place ([`BatchInputs::problem`]), so both buffers refuse the same rows with the same words.
+//! one place ([`BatchInputs::problem`], [`admit`]), so both buffers refuse the same rows with the
+//! same words. Predictor columns alone ([`decode_predictors`]) are also how pattern values are
+//! read back from a state.
 
 use std::collections::HashMap;
 use std::hash::BuildHasherDefault;
@@ -15,7 +17,8 @@ use datafusion::arrow::datatypes::{DataType, Float64Type};
 use datafusion::error::{DataFusionError, Result};
 use rustc_hash::FxHasher;
 
-use super::spec::{FitKind, FitSpec};
+use super::options::InvalidRows;
+use super::spec::{FitKind, ModelSpec};
 
 /// A fast hash map for short keys (factor labels, pattern keys).
 pub type FastMap<K, V> = HashMap<K, V, BuildHasherDefault<FxHasher>>;
@@ -80,37 +83,52 @@ fn codes(a: &ArrayRef, dictionary: &mut Dictionary) -> Result<Vec<u32>> {
     })
 }
 
+/// Decodes predictor columns (one array per predictor of `spec`): numbers as Float64, factors
+/// as codes in their dictionaries.
+pub fn decode_predictors(
+    spec: &ModelSpec,
+    arrays: &[ArrayRef],
+    dictionaries: &mut [Dictionary],
+) -> Result<Vec<BatchColumn>> {
+    if arrays.len() != spec.predictors.len() || dictionaries.len() != spec.predictors.len() {
+        return Err(DataFusionError::Internal(format!(
+            "{}: expected {} predictor columns, got {}",
+            spec.kind.sql_name(),
+            spec.predictors.len(),
+            arrays.len()
+        )));
+    }
+    spec.predictors
+        .iter()
+        .zip(arrays)
+        .zip(dictionaries.iter_mut())
+        .map(|((p, a), d)| {
+            Ok(if p.kind.is_factor() {
+                BatchColumn::Codes(codes(a, d)?)
+            } else {
+                BatchColumn::Numeric(f64s(a)?)
+            })
+        })
+        .collect()
+}
+
 impl BatchInputs {
     /// Decodes `values` (leading arguments, then one array per predictor of `spec`).
-    pub fn new(kind: FitKind, spec: &FitSpec, values: &[ArrayRef], dictionaries: &mut [Dictionary]) -> Result<Self> {
+    pub fn new(spec: &ModelSpec, values: &[ArrayRef], dictionaries: &mut [Dictionary]) -> Result<Self> {
+        let kind = spec.kind;
         let lead = kind.leading();
         let need = lead + spec.predictors.len();
-        if values.len() < need || dictionaries.len() != spec.predictors.len() {
+        if values.len() < need {
             return Err(DataFusionError::Internal(format!(
                 "{}: expected {need} input columns, got {}",
                 kind.sql_name(),
                 values.len()
             )));
         }
-        let y = f64s(&values[0])?;
-        let exposure = (kind == FitKind::PoissonRate).then(|| f64s(&values[1])).transpose()?;
-        let mut predictors = Vec::with_capacity(spec.predictors.len());
-        for ((p, a), d) in spec
-            .predictors
-            .iter()
-            .zip(&values[lead..need])
-            .zip(dictionaries.iter_mut())
-        {
-            predictors.push(if p.factor {
-                BatchColumn::Codes(codes(a, d)?)
-            } else {
-                BatchColumn::Numeric(f64s(a)?)
-            });
-        }
         Ok(BatchInputs {
-            y,
-            exposure,
-            predictors,
+            y: f64s(&values[0])?,
+            exposure: kind.has_exposure().then(|| f64s(&values[1])).transpose()?,
+            predictors: decode_predictors(spec, &values[lead..need], dictionaries)?,
         })
     }
 
@@ -145,15 +163,17 @@ impl BatchInputs {
 
     /// Why row `row` (not NULL) is invalid, as a message naming the function, the argument and
     /// the value; None when it is valid.
-    pub fn problem(&self, kind: FitKind, spec: &FitSpec, row: usize) -> Option<String> {
+    pub fn problem(&self, spec: &ModelSpec, row: usize) -> Option<String> {
+        let kind = spec.kind;
         let function = kind.sql_name();
         let hint = "(add 'invalid=skip' to the options to skip and count such rows)";
         let y = self.y.value(row);
-        let bad_y = match kind {
-            _ if !y.is_finite() => Some("must be finite"),
-            FitKind::Linear => None,
-            _ if y < 0.0 => Some("must be >= 0"),
-            _ => None,
+        let bad_y = if !y.is_finite() {
+            Some("must be finite")
+        } else if kind.counts() && y < 0.0 {
+            Some("must be >= 0")
+        } else {
+            None
         };
         if let Some(why) = bad_y {
             return Some(format!(
@@ -162,7 +182,7 @@ impl BatchInputs {
             ));
         }
         let e = self.exposure_at(row);
-        if kind == FitKind::PoissonRate && !(e.is_finite() && e > 0.0) {
+        if kind.has_exposure() && !(e.is_finite() && e > 0.0) {
             return Some(format!("{function}: exposure value {e} must be finite and > 0 {hint}"));
         }
         for (p, c) in spec.predictors.iter().zip(&self.predictors) {
@@ -182,9 +202,10 @@ impl BatchInputs {
     /// True when every row is valid (checked column by column, without building messages).
     pub fn all_valid(&self, kind: FitKind) -> bool {
         let y = self.y.values();
-        let y_ok = match kind {
-            FitKind::Linear => y.iter().all(|v| v.is_finite()),
-            _ => y.iter().all(|&v| v.is_finite() && v >= 0.0),
+        let y_ok = if kind.counts() {
+            y.iter().all(|&v| v.is_finite() && v >= 0.0)
+        } else {
+            y.iter().all(|v| v.is_finite())
         };
         let e_ok = self
             .exposure
@@ -196,11 +217,85 @@ impl BatchInputs {
                 BatchColumn::Codes(_) => true,
             })
     }
+
+    /// True when every row may enter without a check: no FILTER clause, no NULL, no invalid value.
+    pub fn clean(&self, spec: &ModelSpec, filter: Option<&BooleanArray>) -> bool {
+        filter.is_none() && self.no_nulls() && self.all_valid(spec.kind)
+    }
 }
 
 /// True when row `row` passes the aggregate's FILTER clause.
 pub fn passes(filter: Option<&BooleanArray>, row: usize) -> bool {
     filter.is_none_or(|f| f.is_valid(row) && f.value(row))
+}
+
+/// The row policy of both buffers: whether row `row` (of group `g`) enters. Rows filtered out
+/// are ignored, rows with a NULL counted in `skipped`, invalid rows counted in `invalid` with
+/// `invalid=skip` and an error naming the value otherwise.
+pub fn admit(
+    inputs: &BatchInputs,
+    spec: &ModelSpec,
+    filter: Option<&BooleanArray>,
+    row: usize,
+    g: usize,
+    counts: &mut GroupCounts,
+) -> Result<bool> {
+    if !passes(filter, row) {
+        return Ok(false);
+    }
+    if inputs.is_null(row) {
+        counts.skipped[g] = counts.skipped[g].saturating_add(1);
+        return Ok(false);
+    }
+    if let Some(problem) = inputs.problem(spec, row) {
+        return match spec.settings.invalid {
+            InvalidRows::Skip => {
+                counts.invalid[g] = counts.invalid[g].saturating_add(1);
+                Ok(false)
+            }
+            InvalidRows::Error => Err(DataFusionError::Execution(problem)),
+        };
+    }
+    Ok(true)
+}
+
+/// Rows left out of each group: with a NULL (`skipped`) or invalid and skipped (`invalid`).
+#[derive(Debug, Clone, Default)]
+pub struct GroupCounts {
+    pub skipped: Vec<u64>,
+    pub invalid: Vec<u64>,
+}
+
+impl GroupCounts {
+    pub fn groups(&self) -> usize {
+        self.skipped.len()
+    }
+
+    pub fn ensure(&mut self, groups: usize) {
+        if self.skipped.len() < groups {
+            self.skipped.resize(groups, 0);
+            self.invalid.resize(groups, 0);
+        }
+    }
+
+    /// Removes the first `n` groups' counts and returns them.
+    pub fn split_front(&mut self, n: usize) -> GroupCounts {
+        let rest = GroupCounts {
+            skipped: self.skipped.split_off(n),
+            invalid: self.invalid.split_off(n),
+        };
+        std::mem::replace(self, rest)
+    }
+
+    /// Adds a state's counts for group `g`.
+    pub fn add(&mut self, g: usize, skipped: u64, invalid: u64) -> Result<()> {
+        add_count(&mut self.skipped[g], skipped)?;
+        add_count(&mut self.invalid[g], invalid)
+    }
+
+    pub fn bytes(&self) -> usize {
+        (self.skipped.capacity() + self.invalid.capacity()) * 8
+    }
 }
 
 /// An error for a state array that our own `state`/`convert_to_state` could not have written.

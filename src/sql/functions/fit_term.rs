@@ -10,9 +10,10 @@ use datafusion::logical_expr::{
     ColumnarValue, Documentation, ScalarFunctionArgs, ScalarUDF, ScalarUDFImpl, Signature, Volatility,
 };
 
-use super::fit_aggregate::DOC_SECTION;
-use super::result::term_type;
-use super::scalar_util::{FitView, arg_arrays, exec_error, texts};
+use super::args::{arg_arrays, exec_error, texts};
+use crate::sql::model::aggregate::DOC_SECTION;
+use crate::sql::model::fields::term_type;
+use crate::sql::model::fields::{FitReader, TermField};
 
 #[derive(Debug, PartialEq, Eq, Hash)]
 pub struct FitTerm {
@@ -38,20 +39,20 @@ impl ScalarUDFImpl for FitTerm {
     /// NULL when the fit is NULL or has no term of that name.
     fn invoke_with_args(&self, args: ScalarFunctionArgs) -> Result<ColumnarValue> {
         let arrays = arg_arrays(&args)?;
-        let view = FitView::new("fit_term", &arrays[0])?;
+        let view = FitReader::new("fit_term", &arrays[0])?;
         let names =
             texts(&arrays[1]).map_err(|_| exec_error("fit_term: the second argument must be a term name".into()))?;
         let picks: UInt32Array = (0..args.number_rows)
             .map(|r| {
-                if view.fits.is_null(r) || names.is_null(r) {
+                if view.is_null(r) || names.is_null(r) {
                     return None;
                 }
                 view.term_range(r)
-                    .find(|&i| view.term_text("term", i) == Some(names.value(r)))
+                    .find(|&i| view.term_text(TermField::Term, i) == Some(names.value(r)))
                     .map(|i| i as u32)
             })
             .collect();
-        let values: &StructArray = view.term_values;
+        let values: &StructArray = view.term_values();
         let columns: Vec<ArrayRef> = values
             .columns()
             .iter()

@@ -3,8 +3,9 @@
 //! During logical optimisation each fit call is rewritten once: the trailing options string is
 //! merged with the session defaults and validated, predictor names are rendered from the
 //! argument expressions (`age - 40`, not `t.age - Int64(40)`), `interaction(a, b)` markers are
-//! removed from the argument list and recorded by predictor index, and the result is appended
-//! as a single JSON string literal (the *fit spec*) that the accumulators read. A call that
+//! removed from the argument list and recorded by predictor index, each predictor's kind is
+//! decided from its type, the buffer is chosen, and the result ([`ModelSpec`]) is appended as a
+//! single JSON string literal that the accumulators read. A call that
 //! reaches execution without the optimizer still works: its options are parsed with built-in
 //! defaults and names come from the physical expressions.
 
@@ -20,12 +21,13 @@ use datafusion::physical_expr::PhysicalExpr;
 use serde::{Deserialize, Serialize};
 
 use super::options::{FitSettings, plan_error};
+use crate::glm::FamilyKind;
 
-/// Marker that identifies a resolved fit spec literal.
-const SPEC_TAG: &str = "ratesheet-fit-spec/2";
+/// Marker that identifies a resolved spec literal (and its layout version).
+const SPEC_TAG: &str = "ratesheet-model-spec/3";
 
-/// Which fit function a call is, and so how many leading (response) arguments it has.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash)]
+/// Which fit function a call is: its leading (response) arguments and its family.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, Serialize, Deserialize)]
 pub enum FitKind {
     /// `poisson_fit(count, exposure, predictors...)`
     PoissonRate,
@@ -46,10 +48,7 @@ impl FitKind {
 
     /// Number of arguments before the predictors.
     pub fn leading(self) -> usize {
-        match self {
-            FitKind::PoissonRate => 2,
-            FitKind::PoissonCount | FitKind::Linear => 1,
-        }
+        self.leading_names().len()
     }
 
     /// Names of the leading arguments, for messages.
@@ -60,64 +59,141 @@ impl FitKind {
             FitKind::Linear => &["response"],
         }
     }
+
+    pub fn family(self) -> FamilyKind {
+        match self {
+            FitKind::PoissonRate | FitKind::PoissonCount => FamilyKind::Poisson,
+            FitKind::Linear => FamilyKind::Gaussian,
+        }
+    }
+
+    /// Whether the second argument is an exposure (its log is the offset).
+    pub fn has_exposure(self) -> bool {
+        self == FitKind::PoissonRate
+    }
+
+    /// Whether the response must be a count (>= 0).
+    pub fn counts(self) -> bool {
+        self.family() == FamilyKind::Poisson
+    }
+}
+
+/// How a predictor enters the model, decided once from its SQL type ([`PredictorKind::of`]).
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+pub enum PredictorKind {
+    /// Text, boolean or dictionary values: a treatment-coded factor.
+    Factor,
+    /// Whole numbers used as numbers (one term); their few distinct values let Poisson fits
+    /// keep pattern sums.
+    Integer,
+    /// Any other number (one term).
+    Numeric,
+}
+
+impl PredictorKind {
+    /// The one rule: text, boolean and dictionary types are factors, integer types whole
+    /// numbers, other numeric types (and NULL) numbers; anything else is refused.
+    pub fn of(function: &str, argument: &str, data_type: &DataType) -> Result<PredictorKind> {
+        match data_type {
+            DataType::Utf8 | DataType::LargeUtf8 | DataType::Utf8View | DataType::Boolean => Ok(PredictorKind::Factor),
+            DataType::Dictionary(_, value) if Self::of(function, argument, value)? == PredictorKind::Factor => {
+                Ok(PredictorKind::Factor)
+            }
+            t if t.is_integer() => Ok(PredictorKind::Integer),
+            t if t.is_numeric() || matches!(t, DataType::Null) => Ok(PredictorKind::Numeric),
+            other => Err(plan_error(format!(
+                "{function}: predictor {argument} has type {other}, which is not supported; predictors must \
+                 be numeric (one term) or text/boolean (a factor); cast dates to a number of days or to text"
+            ))),
+        }
+    }
+
+    pub fn is_factor(self) -> bool {
+        self == PredictorKind::Factor
+    }
+
+    /// The name reported in the fit's `predictors` list.
+    pub fn report_name(self) -> &'static str {
+        if self.is_factor() { "factor" } else { "numeric" }
+    }
+}
+
+/// Where a fit keeps its groups' data until evaluation.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+pub enum BufferKind {
+    /// Every row (`rows`).
+    Rows,
+    /// Sums per covariate pattern (`patterns`): for families that can be fitted on them, when
+    /// every predictor is a factor or a whole number.
+    Patterns,
+}
+
+impl BufferKind {
+    pub fn choose(family: FamilyKind, predictors: &[PredictorSpec]) -> BufferKind {
+        let discrete = predictors.iter().all(|p| p.kind != PredictorKind::Numeric);
+        if family.family().collapsible() && discrete {
+            BufferKind::Patterns
+        } else {
+            BufferKind::Rows
+        }
+    }
 }
 
 /// One main-effect predictor of a fit.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct PredictorSpec {
     pub name: String,
-    /// True for text, boolean and dictionary columns (treatment-coded factors).
-    pub factor: bool,
+    pub kind: PredictorKind,
 }
 
-/// Everything an accumulator needs to know about its call.
+/// Everything decided about a fit call, once, at planning: the function (so the family and
+/// whether there is an exposure), the predictors and their kinds, the interactions, the
+/// settings, where rows are kept, and whether exp(coefficient) is a ratio. Every later stage
+/// reads this spec; nothing re-derives it from Arrow types.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
-pub struct FitSpec {
+pub struct ModelSpec {
     pub tag: String,
+    pub kind: FitKind,
     pub settings: FitSettings,
     pub predictors: Vec<PredictorSpec>,
     /// Pairs of predictor indices.
     pub interactions: Vec<(usize, usize)>,
+    pub buffer: BufferKind,
     /// Whether exp(coefficient) is a ratio: always for Poisson fits (log link); for
     /// `linear_fit` only when the response is a natural logarithm (`ln(...)`, or the option
     /// `response=log`).
     pub ratio_scale: bool,
 }
 
-impl FitSpec {
-    /// A spec with the built-in settings and no predictors.
-    pub fn empty() -> Result<FitSpec> {
-        Ok(FitSpec {
+impl ModelSpec {
+    /// A spec with the built-in settings and the given predictors (no interactions).
+    pub fn new(kind: FitKind, predictors: Vec<PredictorSpec>) -> ModelSpec {
+        ModelSpec {
             tag: SPEC_TAG.to_string(),
+            kind,
             settings: FitSettings::builtin(),
-            predictors: Vec::new(),
+            buffer: BufferKind::choose(kind.family(), &predictors),
+            predictors,
             interactions: Vec::new(),
-            ratio_scale: true,
-        })
+            ratio_scale: kind.family() != FamilyKind::Gaussian,
+        }
+    }
+
+    pub fn family(&self) -> FamilyKind {
+        self.kind.family()
     }
 
     pub fn to_literal(&self) -> String {
         serde_json::to_string(self).expect("spec serialises")
     }
 
-    pub fn from_literal(text: &str) -> Option<FitSpec> {
+    pub fn from_literal(text: &str) -> Option<ModelSpec> {
         if !text.starts_with('{') {
             return None;
         }
-        serde_json::from_str::<FitSpec>(text).ok().filter(|s| s.tag == SPEC_TAG)
-    }
-}
-
-/// Whether values of this type are a factor (true), numeric (false), or unsupported (error).
-pub fn classify(function: &str, argument: &str, data_type: &DataType) -> Result<bool> {
-    match data_type {
-        DataType::Utf8 | DataType::LargeUtf8 | DataType::Utf8View | DataType::Boolean => Ok(true),
-        DataType::Dictionary(_, value) if classify(function, argument, value)? => Ok(true),
-        t if t.is_numeric() || matches!(t, DataType::Null) => Ok(false),
-        other => Err(plan_error(format!(
-            "{function}: predictor {argument} has type {other}, which is not supported; predictors must \
-             be numeric (one term) or text/boolean (a factor); cast dates to a number of days or to text"
-        ))),
+        serde_json::from_str::<ModelSpec>(text)
+            .ok()
+            .filter(|s| s.tag == SPEC_TAG)
     }
 }
 
@@ -131,7 +207,7 @@ pub fn resolve_call(kind: FitKind, mut call: AggregateFunction, info: &SimplifyC
     let function = kind.sql_name();
     let args = &call.params.args;
     if let Some(Expr::Literal(ScalarValue::Utf8(Some(text)) | ScalarValue::Utf8View(Some(text)), _)) = args.last() {
-        if FitSpec::from_literal(text).is_some() {
+        if ModelSpec::from_literal(text).is_some() {
             return Ok(Expr::AggregateFunction(call));
         }
     }
@@ -156,13 +232,13 @@ pub fn resolve_call(kind: FitKind, mut call: AggregateFunction, info: &SimplifyC
             continue;
         }
         let name = render(&arg);
-        let factor = classify(function, &name, &info.get_data_type(&arg)?)?;
+        let kind = PredictorKind::of(function, &name, &info.get_data_type(&arg)?)?;
         if predictors.iter().any(|p| p.name == name) {
             return Err(plan_error(format!(
                 "{function}: predictor {name} is given twice; each predictor may appear once"
             )));
         }
-        predictors.push(PredictorSpec { name, factor });
+        predictors.push(PredictorSpec { name, kind });
         mains.push(arg);
     }
     let position = |name: &str| predictors.iter().position(|p| p.name == name);
@@ -180,12 +256,11 @@ pub fn resolve_call(kind: FitKind, mut call: AggregateFunction, info: &SimplifyC
     }
     check_references(function, &settings, &predictors)?;
     let ratio_scale = ratio_scale(kind, &settings, || args.first().is_some_and(is_natural_log))?;
-    let spec = FitSpec {
-        tag: SPEC_TAG.to_string(),
+    let spec = ModelSpec {
         settings,
-        predictors,
         interactions,
         ratio_scale,
+        ..ModelSpec::new(kind, predictors)
     };
     args.extend(mains);
     // A Utf8View literal: the engine expands literal arguments to one value per input row, and
@@ -199,7 +274,7 @@ pub fn resolve_call(kind: FitKind, mut call: AggregateFunction, info: &SimplifyC
 pub fn check_references(function: &str, settings: &FitSettings, predictors: &[PredictorSpec]) -> Result<()> {
     for name in settings.references.keys() {
         match predictors.iter().find(|p| &p.name == name) {
-            Some(p) if p.factor => {}
+            Some(p) if p.kind.is_factor() => {}
             Some(_) => {
                 return Err(plan_error(format!(
                     "{function}: ref.{name} names a numeric predictor; reference levels apply to text or boolean predictors"
@@ -217,7 +292,7 @@ pub fn check_references(function: &str, settings: &FitSettings, predictors: &[Pr
     Ok(())
 }
 
-/// Whether a fit's exp(coefficient) is a ratio (see [`FitSpec::ratio_scale`]); `log_response`
+/// Whether a fit's exp(coefficient) is a ratio (see [`ModelSpec::ratio_scale`]); `log_response`
 /// tells whether the response expression is `ln(...)`.
 fn ratio_scale(kind: FitKind, settings: &FitSettings, log_response: impl FnOnce() -> bool) -> Result<bool> {
     use super::options::ResponseScale;
@@ -319,7 +394,7 @@ pub fn spec_at_execution(
     kind: FitKind,
     exprs: &[Arc<dyn PhysicalExpr>],
     types: &[DataType],
-) -> Result<(FitSpec, usize)> {
+) -> Result<(ModelSpec, usize)> {
     use datafusion::physical_expr::expressions::Literal;
     let function = kind.sql_name();
     let last_text: Option<String> = exprs.last().and_then(|e| {
@@ -330,7 +405,7 @@ pub fn spec_at_execution(
             _ => None,
         })
     });
-    if let Some(spec) = last_text.as_deref().and_then(FitSpec::from_literal) {
+    if let Some(spec) = last_text.as_deref().and_then(ModelSpec::from_literal) {
         return Ok((spec, exprs.len() - 1));
     }
     let mut settings = FitSettings::builtin();
@@ -349,8 +424,8 @@ pub fn spec_at_execution(
                 "{function}: interaction({name}) needs the query optimizer, which rewrites it; run the query through a SessionContext"
             )));
         }
-        let factor = classify(function, &name, t)?;
-        predictors.push(PredictorSpec { name, factor });
+        let kind = PredictorKind::of(function, &name, t)?;
+        predictors.push(PredictorSpec { name, kind });
     }
     check_references(function, &settings, &predictors)?;
     let ratio_scale = ratio_scale(kind, &settings, || {
@@ -362,12 +437,10 @@ pub fn spec_at_execution(
         e.downcast_ref::<ScalarFunctionExpr>().is_some_and(|f| f.name() == "ln")
     })?;
     Ok((
-        FitSpec {
-            tag: SPEC_TAG.to_string(),
+        ModelSpec {
             settings,
-            predictors,
-            interactions: Vec::new(),
             ratio_scale,
+            ..ModelSpec::new(kind, predictors)
         },
         end,
     ))

@@ -1,0 +1,80 @@
+//! Helpers shared by the scalar functions: argument arrays and result structs. Fits are read
+//! with `model::fields::FitReader`.
+
+use std::sync::Arc;
+
+use datafusion::arrow::array::{ArrayRef, AsArray, Float64Array, StringArray, StructArray};
+use datafusion::arrow::compute::cast;
+use datafusion::arrow::datatypes::{DataType, Field, Fields, Float64Type};
+use datafusion::error::{DataFusionError, Result};
+use datafusion::logical_expr::{ColumnarValue, ScalarFunctionArgs};
+
+/// All arguments as arrays of `number_rows` values.
+pub fn arg_arrays(args: &ScalarFunctionArgs) -> Result<Vec<ArrayRef>> {
+    ColumnarValue::values_to_arrays(&args.args)
+}
+
+/// An argument cast to Float64.
+pub fn floats(a: &ArrayRef) -> Result<Float64Array> {
+    Ok(cast(a, &DataType::Float64)?.as_primitive::<Float64Type>().clone())
+}
+
+/// An argument cast to Utf8.
+pub fn texts(a: &ArrayRef) -> Result<StringArray> {
+    Ok(cast(a, &DataType::Utf8)?.as_string::<i32>().clone())
+}
+
+/// Builds a struct of Float64 columns (plus optional extra columns) from per-row options.
+pub fn float_struct(names: &[&str], columns: Vec<Vec<Option<f64>>>) -> StructArray {
+    let fields = Fields::from(
+        names
+            .iter()
+            .map(|n| Field::new(*n, DataType::Float64, true))
+            .collect::<Vec<_>>(),
+    );
+    let arrays: Vec<ArrayRef> = columns
+        .into_iter()
+        .map(|c| Arc::new(Float64Array::from(c)) as ArrayRef)
+        .collect();
+    StructArray::new(fields, arrays, None)
+}
+
+pub fn float_struct_type(names: &[&str]) -> DataType {
+    DataType::Struct(Fields::from(
+        names
+            .iter()
+            .map(|n| Field::new(*n, DataType::Float64, true))
+            .collect::<Vec<_>>(),
+    ))
+}
+
+pub fn exec_error(msg: String) -> DataFusionError {
+    DataFusionError::Execution(msg)
+}
+
+/// Coerces all arguments to Float64 after checking their count (`required` of `names`) and that
+/// each is numeric.
+pub fn numeric_args(function: &str, names: &[&str], required: usize, types: &[DataType]) -> Result<Vec<DataType>> {
+    if types.len() < required || types.len() > names.len() {
+        return Err(DataFusionError::Plan(format!(
+            "{function} takes {} to {} arguments ({}), got {}",
+            required,
+            names.len(),
+            names.join(", "),
+            types.len()
+        )));
+    }
+    types
+        .iter()
+        .zip(names)
+        .map(|(t, n)| {
+            if t.is_numeric() || matches!(t, DataType::Null) {
+                Ok(DataType::Float64)
+            } else {
+                Err(DataFusionError::Plan(format!(
+                    "{function}: {n} must be numeric, got {t}"
+                )))
+            }
+        })
+        .collect()
+}

@@ -1,0 +1,14 @@
+//! The SQL functions, one file each: signature, evaluation and documentation. The three fit
+//! aggregates share their implementation (`model`); their files bind the name and the
+//! documentation.
+
+pub mod args;
+pub mod fit_comparison;
+pub mod fit_expected;
+pub mod fit_term;
+pub mod interaction;
+pub mod linear_fit;
+pub mod poisson_count_fit;
+pub mod poisson_fit;
+pub mod rate_comparison;
+pub mod rate_interval;

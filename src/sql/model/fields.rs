@@ -1,0 +1,633 @@
+//! The fit struct: one table of fields ([`FitField`], and [`TermField`], [`PredictorField`],
+//! [`DesignField`] for its lists), from which the Arrow type, the builder ([`FitColumns`]) and
+//! the typed reader ([`FitReader`]) all come. Adding a field is one line in a table below.
+//!
+//! Field names marked "fixed" in the SQL contract (`n_used`, `n_skipped`, `n_params`,
+//! `df_resid`, `converged`, `iterations`, `status`, `deviance`, `null_deviance`,
+//! `pearson_chi2`, `dispersion`, `loglik`, `aic`, `bic`, `se_type`, `level`, `terms` and the
+//! term fields) must never change; the others are ours and documented in the README. This is
+//! the only file under `src/` that spells them.
+//!
+//! Every number leaves through [`Range::report`]: non-finite values become NULL, and a
+//! statistic with a natural range is brought into it.
+
+use std::sync::{Arc, LazyLock};
+
+use datafusion::arrow::array::{
+    Array, ArrayRef, AsArray, BooleanArray, Float64Array, ListArray, StringArray, StructArray, UInt32Array, UInt64Array,
+};
+use datafusion::arrow::buffer::OffsetBuffer;
+use datafusion::arrow::datatypes::{DataType, Field, Fields, Float64Type, UInt32Type, UInt64Type};
+use datafusion::error::{DataFusionError, Result};
+
+use super::spec::PredictorKind;
+use crate::glm::design::{ColumnSource, SourcePart};
+use crate::glm::inference::{ModelTest, gof_p_value, model_test};
+use crate::glm::{FamilyKind, FitStats, GlmFit, TermRow};
+
+/// The values a reported number can take. A statistic whose formula cannot leave its range
+/// (a deviance is a sum of non-negative terms, a p-value a probability) is brought back into
+/// it at the exit point: what lies outside is rounding residue (a saturated fit's deviance of
+/// -2.4e-14), and the nearest value inside the range is the answer.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Range {
+    Any,
+    NonNegative,
+    Probability,
+}
+
+impl Range {
+    /// `v` brought into the range; non-finite values become NULL and -0.0 becomes 0.
+    pub fn report(self, v: Option<f64>) -> Option<f64> {
+        let v = v.filter(|x| x.is_finite())?;
+        Some(
+            match self {
+                Range::Any => v,
+                Range::NonNegative => v.max(0.0),
+                Range::Probability => v.clamp(0.0, 1.0),
+            } + 0.0,
+        )
+    }
+}
+
+/// The Arrow type of a field's values.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum CellType {
+    Text,
+    UInt,
+    UInt32,
+    Float,
+    Bool,
+}
+
+impl CellType {
+    fn data_type(self) -> DataType {
+        match self {
+            CellType::Text => DataType::Utf8,
+            CellType::UInt => DataType::UInt64,
+            CellType::UInt32 => DataType::UInt32,
+            CellType::Float => DataType::Float64,
+            CellType::Bool => DataType::Boolean,
+        }
+    }
+}
+
+/// One field value of a record.
+pub enum Cell {
+    Text(Option<String>),
+    UInt(Option<u64>),
+    UInt32(Option<u32>),
+    Float(Option<f64>),
+    Bool(Option<bool>),
+}
+
+/// A table of fields over a record type: name, type, range and how the value is read.
+pub trait RecordTable: Copy + PartialEq + std::fmt::Debug + 'static {
+    type Record<'a>;
+    fn all() -> &'static [Self];
+    fn name(self) -> &'static str;
+    fn cell_type(self) -> CellType;
+    fn range(self) -> Range;
+    fn cell(self, record: &Self::Record<'_>) -> Cell;
+
+    /// The Arrow fields of the table, in order.
+    fn fields() -> Fields {
+        Self::all()
+            .iter()
+            .map(|f| Field::new(f.name(), f.cell_type().data_type(), true))
+            .collect()
+    }
+}
+
+/// Declares a field table: `Variant: "name", CellType, Range, |record| value;` per field.
+macro_rules! record_table {
+    ($(#[$doc:meta])* $table:ident over <$lt:lifetime> $record:ty {
+        $($variant:ident: $name:literal, $ty:ident, $range:ident, |$r:ident| $get:expr;)*
+    }) => {
+        $(#[$doc])*
+        #[derive(Debug, Clone, Copy, PartialEq, Eq)]
+        pub enum $table { $($variant),* }
+
+        impl RecordTable for $table {
+            type Record<$lt> = $record;
+            fn all() -> &'static [Self] {
+                &[$($table::$variant),*]
+            }
+            fn name(self) -> &'static str {
+                match self { $($table::$variant => $name),* }
+            }
+            fn cell_type(self) -> CellType {
+                match self { $($table::$variant => CellType::$ty),* }
+            }
+            fn range(self) -> Range {
+                match self { $($table::$variant => Range::$range),* }
+            }
+            #[allow(clippy::redundant_closure_call)]
+            fn cell(self, record: &Self::Record<'_>) -> Cell {
+                match self { $($table::$variant => { let $r = record; Cell::$ty($get) }),* }
+            }
+        }
+    };
+}
+
+/// Everything reported for one group, typed.
+pub struct GroupReport<'a> {
+    pub status: String,
+    pub family: FamilyKind,
+    pub n_used: u64,
+    pub n_skipped: u64,
+    pub n_invalid: u64,
+    /// Design columns (0 when no design was built).
+    pub n_params: u64,
+    pub fit: Option<&'a GlmFit>,
+    pub se_type: &'a str,
+    pub level: f64,
+    pub total_count: Option<f64>,
+    pub total_exposure: Option<f64>,
+}
+
+impl GroupReport<'_> {
+    fn stats(&self) -> Option<&FitStats> {
+        self.fit.map(|f| &f.stats)
+    }
+
+    fn model_test(&self) -> Option<ModelTest> {
+        self.fit.and_then(model_test)
+    }
+
+    /// The model test when it is a likelihood-ratio chi-square.
+    fn lr(&self) -> Option<ModelTest> {
+        self.model_test().filter(|t| t.df_denominator.is_none())
+    }
+
+    /// The model test when it is an F test.
+    fn f_test(&self) -> Option<ModelTest> {
+        self.model_test().filter(|t| t.df_denominator.is_some())
+    }
+
+    /// A goodness-of-fit p-value of `statistic`, for families whose scale is fixed.
+    fn gof(&self, statistic: fn(&FitStats) -> Option<f64>) -> Option<f64> {
+        let fit = self.fit.filter(|f| f.scale.has_gof_tests())?;
+        gof_p_value(statistic(&fit.stats), fit.stats.df_resid)
+    }
+
+    fn crude_rate(&self) -> Option<f64> {
+        match (self.total_count, self.total_exposure) {
+            (Some(c), Some(e)) if e > 0.0 => Some(c / e),
+            _ => None,
+        }
+    }
+}
+
+record_table! {
+    /// The fit-level fields, in order (the three lists follow them: [`TERMS`], [`PREDICTORS`],
+    /// [`DESIGN`]).
+    FitField over <'a> GroupReport<'a> {
+        Status: "status", Text, Any, |r| Some(r.status.clone());
+        Family: "family", Text, Any, |r| Some(r.family.name().to_string());
+        NUsed: "n_used", UInt, Any, |r| Some(r.n_used);
+        NSkipped: "n_skipped", UInt, Any, |r| Some(r.n_skipped);
+        NInvalid: "n_invalid", UInt, Any, |r| Some(r.n_invalid);
+        NParams: "n_params", UInt, Any, |r| Some(r.n_params);
+        Rank: "rank", UInt, Any, |r| r.stats().map(|s| s.rank as u64);
+        DfResid: "df_resid", UInt, Any, |r| r.stats().and_then(|s| s.df_resid).map(|d| d as u64);
+        Converged: "converged", Bool, Any, |r| Some(r.fit.is_some_and(|f| f.converged));
+        Iterations: "iterations", UInt, Any, |r| Some(r.fit.map_or(0, |f| f.iterations as u64));
+        Deviance: "deviance", Float, NonNegative, |r| r.stats().and_then(|s| s.deviance);
+        NullDeviance: "null_deviance", Float, NonNegative, |r| r.stats().and_then(|s| s.null_deviance);
+        PearsonChi2: "pearson_chi2", Float, NonNegative, |r| r.stats().and_then(|s| s.pearson_chi2);
+        Dispersion: "dispersion", Float, NonNegative, |r| r.fit.and_then(GlmFit::dispersion);
+        DevianceDf: "deviance_df", Float, NonNegative, |r| r.fit.and_then(GlmFit::deviance_per_df);
+        DevianceP: "deviance_p", Float, Probability, |r| r.gof(|s| s.deviance);
+        PearsonP: "pearson_p", Float, Probability, |r| r.gof(|s| s.pearson_chi2);
+        LrChi2: "lr_chi2", Float, NonNegative, |r| r.lr().map(|t| t.statistic);
+        LrDf: "lr_df", UInt, Any, |r| r.lr().map(|t| t.df as u64);
+        LrP: "lr_p", Float, Probability, |r| r.lr().map(|t| t.p_value);
+        FStat: "f_stat", Float, NonNegative, |r| r.f_test().map(|t| t.statistic);
+        FP: "f_p", Float, Probability, |r| r.f_test().map(|t| t.p_value);
+        OverdispersionZ: "overdispersion_z", Float, Any, |r| r.stats().and_then(|s| s.extra.overdispersion).map(|t| t.statistic);
+        OverdispersionP: "overdispersion_p", Float, Probability, |r| r.stats().and_then(|s| s.extra.overdispersion).map(|t| t.p_value);
+        Loglik: "loglik", Float, Any, |r| r.stats().and_then(|s| s.loglik);
+        Aic: "aic", Float, Any, |r| r.stats().and_then(|s| s.aic);
+        Bic: "bic", Float, Any, |r| r.stats().and_then(|s| s.bic);
+        TotalCount: "total_count", Float, NonNegative, |r| r.total_count;
+        TotalExposure: "total_exposure", Float, NonNegative, |r| r.total_exposure;
+        CrudeRate: "crude_rate", Float, NonNegative, |r| r.crude_rate();
+        SeType: "se_type", Text, Any, |r| Some(r.se_type.to_string());
+        Level: "level", Float, Probability, |r| Some(r.level);
+    }
+}
+
+record_table! {
+    /// The fields of one entry of `terms` (fixed names).
+    TermField over <'a> TermRow {
+        Term: "term", Text, Any, |t| Some(t.term.clone());
+        Estimate: "estimate", Float, Any, |t| t.estimate;
+        StdError: "std_error", Float, NonNegative, |t| t.std_error;
+        Z: "z", Float, Any, |t| t.statistic;
+        PValue: "p_value", Float, Probability, |t| t.p_value;
+        CiLow: "ci_low", Float, Any, |t| t.ci_low;
+        CiHigh: "ci_high", Float, Any, |t| t.ci_high;
+        RateRatio: "rate_ratio", Float, NonNegative, |t| t.rate_ratio;
+        RrLow: "rr_low", Float, NonNegative, |t| t.rr_low;
+        RrHigh: "rr_high", Float, NonNegative, |t| t.rr_high;
+        Flag: "flag", Text, Any, |t| t.flag.map(str::to_string);
+    }
+}
+
+/// Predictor description for the result (used by scoring).
+#[derive(Debug, Clone)]
+pub struct PredictorInfo {
+    pub name: String,
+    pub kind: PredictorKind,
+    /// The reference level of a treatment-coded factor.
+    pub reference: Option<String>,
+}
+
+record_table! {
+    /// The fields of one entry of `predictors`.
+    PredictorField over <'a> PredictorInfo {
+        Name: "name", Text, Any, |p| Some(p.name.clone());
+        Kind: "kind", Text, Any, |p| Some(p.kind.report_name().to_string());
+        Reference: "reference", Text, Any, |p| p.reference.clone();
+    }
+}
+
+/// One design column's construction, as the `design` list reports it: predictor indices and,
+/// for factor parts, the level; both NULL for the intercept, `predictor2` NULL for a main effect.
+#[derive(Debug, Clone, PartialEq)]
+pub struct DesignEntry {
+    pub term: String,
+    pub predictor: Option<u32>,
+    pub level: Option<String>,
+    pub predictor2: Option<u32>,
+    pub level2: Option<String>,
+}
+
+impl DesignEntry {
+    pub fn new(term: &str, source: &ColumnSource) -> DesignEntry {
+        let split = |p: &SourcePart| (Some(p.predictor as u32), p.level.clone());
+        let ((predictor, level), (predictor2, level2)) = match source {
+            ColumnSource::Intercept | ColumnSource::Given => ((None, None), (None, None)),
+            ColumnSource::Main(a) => (split(a), (None, None)),
+            ColumnSource::Product(a, b) => (split(a), split(b)),
+        };
+        DesignEntry {
+            term: term.to_string(),
+            predictor,
+            level,
+            predictor2,
+            level2,
+        }
+    }
+}
+
+record_table! {
+    /// The fields of one entry of `design`.
+    DesignField over <'a> DesignEntry {
+        Term: "term", Text, Any, |d| Some(d.term.clone());
+        Predictor: "predictor", UInt32, Any, |d| d.predictor;
+        Level: "level", Text, Any, |d| d.level.clone();
+        Predictor2: "predictor2", UInt32, Any, |d| d.predictor2;
+        Level2: "level2", Text, Any, |d| d.level2.clone();
+    }
+}
+
+/// The list fields of the fit struct.
+pub const TERMS: &str = "terms";
+pub const PREDICTORS: &str = "predictors";
+pub const DESIGN: &str = "design";
+
+fn list_of<T: RecordTable>() -> DataType {
+    DataType::List(Arc::new(Field::new("item", DataType::Struct(T::fields()), true)))
+}
+
+static FIT_STRUCT: LazyLock<Fields> = LazyLock::new(|| {
+    let mut fields: Vec<Field> = FitField::fields().iter().map(|f| f.as_ref().clone()).collect();
+    fields.push(Field::new(TERMS, list_of::<TermField>(), true));
+    fields.push(Field::new(PREDICTORS, list_of::<PredictorField>(), true));
+    fields.push(Field::new(DESIGN, list_of::<DesignField>(), true));
+    Fields::from(fields)
+});
+
+/// The struct type returned by `poisson_fit`, `poisson_count_fit` and `linear_fit`.
+pub fn fit_type() -> DataType {
+    DataType::Struct(FIT_STRUCT.clone())
+}
+
+/// The struct type of one term (`fit_term`, `unnest(fit.terms)`).
+pub fn term_type() -> DataType {
+    DataType::Struct(TermField::fields())
+}
+
+/// Whether `fields` are those of a fit struct (the names of its first field and its lists).
+pub fn is_fit_struct(fields: &Fields) -> bool {
+    [FitField::Status.name(), TERMS]
+        .iter()
+        .all(|n| fields.iter().any(|f| f.name() == *n))
+}
+
+/// Column builders of one record table.
+struct RecordColumns<T: RecordTable> {
+    cells: Vec<CellColumn>,
+    rows: usize,
+    _table: std::marker::PhantomData<T>,
+}
+
+enum CellColumn {
+    Text(Vec<Option<String>>),
+    UInt(Vec<Option<u64>>),
+    UInt32(Vec<Option<u32>>),
+    Float(Vec<Option<f64>>),
+    Bool(Vec<Option<bool>>),
+}
+
+impl<T: RecordTable> RecordColumns<T> {
+    fn new() -> Self {
+        let cells = T::all()
+            .iter()
+            .map(|f| match f.cell_type() {
+                CellType::Text => CellColumn::Text(Vec::new()),
+                CellType::UInt => CellColumn::UInt(Vec::new()),
+                CellType::UInt32 => CellColumn::UInt32(Vec::new()),
+                CellType::Float => CellColumn::Float(Vec::new()),
+                CellType::Bool => CellColumn::Bool(Vec::new()),
+            })
+            .collect();
+        RecordColumns {
+            cells,
+            rows: 0,
+            _table: std::marker::PhantomData,
+        }
+    }
+
+    fn push(&mut self, record: &T::Record<'_>) {
+        for (field, column) in T::all().iter().zip(&mut self.cells) {
+            match (field.cell(record), column) {
+                (Cell::Text(v), CellColumn::Text(c)) => c.push(v),
+                (Cell::UInt(v), CellColumn::UInt(c)) => c.push(v),
+                (Cell::UInt32(v), CellColumn::UInt32(c)) => c.push(v),
+                (Cell::Float(v), CellColumn::Float(c)) => c.push(field.range().report(v)),
+                (Cell::Bool(v), CellColumn::Bool(c)) => c.push(v),
+                _ => unreachable!("a field's cell has the field's type"),
+            }
+        }
+        self.rows += 1;
+    }
+
+    fn arrays(self) -> Vec<ArrayRef> {
+        self.cells
+            .into_iter()
+            .map(|c| -> ArrayRef {
+                match c {
+                    CellColumn::Text(v) => Arc::new(StringArray::from(v)),
+                    CellColumn::UInt(v) => Arc::new(UInt64Array::from(v)),
+                    CellColumn::UInt32(v) => Arc::new(UInt32Array::from(v)),
+                    CellColumn::Float(v) => Arc::new(Float64Array::from(v)),
+                    CellColumn::Bool(v) => Arc::new(BooleanArray::from(v)),
+                }
+            })
+            .collect()
+    }
+
+    fn finish(self) -> StructArray {
+        StructArray::new(T::fields(), self.arrays(), None)
+    }
+}
+
+/// A list column of records: the records of all rows and each row's offset.
+struct RecordLists<T: RecordTable> {
+    records: RecordColumns<T>,
+    offsets: Vec<i32>,
+}
+
+impl<T: RecordTable> RecordLists<T> {
+    fn new() -> Self {
+        RecordLists {
+            records: RecordColumns::new(),
+            offsets: vec![0],
+        }
+    }
+
+    fn push_row<'r>(&mut self, records: impl IntoIterator<Item = &'r T::Record<'r>>)
+    where
+        T::Record<'r>: 'r,
+    {
+        for r in records {
+            self.records.push(r);
+        }
+        self.offsets.push(self.records.rows as i32);
+    }
+
+    fn finish(self) -> ArrayRef {
+        Arc::new(ListArray::new(
+            Arc::new(Field::new("item", DataType::Struct(T::fields()), true)),
+            OffsetBuffer::new(self.offsets.into()),
+            Arc::new(self.records.finish()),
+            None,
+        ))
+    }
+}
+
+/// A term row with only reportable numbers; an estimate lost that way is flagged, never a
+/// silent NULL.
+fn flag_lost_estimate(mut t: TermRow) -> TermRow {
+    if t.flag.is_none() && t.estimate.is_some_and(|e| !e.is_finite()) {
+        t.flag = Some("not estimated");
+    }
+    t
+}
+
+/// Builds a column of fit structs, one group at a time.
+pub struct FitColumns {
+    fits: RecordColumns<FitField>,
+    terms: RecordLists<TermField>,
+    predictors: RecordLists<PredictorField>,
+    design: RecordLists<DesignField>,
+}
+
+impl Default for FitColumns {
+    fn default() -> Self {
+        Self::new()
+    }
+}
+
+impl FitColumns {
+    pub fn new() -> Self {
+        FitColumns {
+            fits: RecordColumns::new(),
+            terms: RecordLists::new(),
+            predictors: RecordLists::new(),
+            design: RecordLists::new(),
+        }
+    }
+
+    pub fn push(
+        &mut self,
+        report: &GroupReport<'_>,
+        terms: Vec<TermRow>,
+        predictors: &[PredictorInfo],
+        design: &[DesignEntry],
+    ) {
+        self.fits.push(report);
+        let terms: Vec<TermRow> = terms.into_iter().map(flag_lost_estimate).collect();
+        self.terms.push_row(&terms);
+        self.predictors.push_row(predictors);
+        self.design.push_row(design);
+    }
+
+    pub fn finish(self) -> StructArray {
+        let mut arrays = self.fits.arrays();
+        arrays.push(self.terms.finish());
+        arrays.push(self.predictors.finish());
+        arrays.push(self.design.finish());
+        StructArray::new(FIT_STRUCT.clone(), arrays, None)
+    }
+}
+
+/// Typed reading of a column of fit structs (for the scalar functions, rendering, export and
+/// tests): every field is named through the tables above.
+pub struct FitReader<'a> {
+    pub fits: &'a StructArray,
+    terms: &'a ListArray,
+    term_values: &'a StructArray,
+    design: &'a ListArray,
+    design_values: &'a StructArray,
+    predictors: &'a ListArray,
+    predictor_values: &'a StructArray,
+}
+
+impl<'a> FitReader<'a> {
+    /// A reader over `a`; an error naming `function` when `a` is not a column of fits.
+    pub fn new(function: &str, a: &'a ArrayRef) -> Result<FitReader<'a>> {
+        let bad = || {
+            DataFusionError::Execution(format!(
+                "{function}: the first argument must be a fit (the result of poisson_fit, poisson_count_fit or linear_fit)"
+            ))
+        };
+        Self::of(a.as_struct_opt().ok_or_else(bad)?).ok_or_else(bad)
+    }
+
+    /// A reader over a struct array, when it is a column of fits.
+    pub fn of(fits: &'a StructArray) -> Option<FitReader<'a>> {
+        if !is_fit_struct(fits.fields()) {
+            return None;
+        }
+        let list = |name: &str| -> Option<(&'a ListArray, &'a StructArray)> {
+            let l = fits.column_by_name(name).and_then(|c| c.as_list_opt::<i32>())?;
+            Some((l, l.values().as_struct_opt()?))
+        };
+        let (terms, term_values) = list(TERMS)?;
+        let (design, design_values) = list(DESIGN)?;
+        let (predictors, predictor_values) = list(PREDICTORS)?;
+        Some(FitReader {
+            fits,
+            terms,
+            term_values,
+            design,
+            design_values,
+            predictors,
+            predictor_values,
+        })
+    }
+
+    pub fn len(&self) -> usize {
+        self.fits.len()
+    }
+
+    pub fn is_empty(&self) -> bool {
+        self.fits.is_empty()
+    }
+
+    pub fn is_null(&self, r: usize) -> bool {
+        self.fits.is_null(r)
+    }
+
+    fn range(list: &ListArray, r: usize) -> std::ops::Range<usize> {
+        let o = list.value_offsets();
+        o[r] as usize..o[r + 1] as usize
+    }
+
+    /// Entries of `terms` of row `r`.
+    pub fn term_range(&self, r: usize) -> std::ops::Range<usize> {
+        Self::range(self.terms, r)
+    }
+
+    pub fn predictor_range(&self, r: usize) -> std::ops::Range<usize> {
+        Self::range(self.predictors, r)
+    }
+
+    pub fn design_range(&self, r: usize) -> std::ops::Range<usize> {
+        Self::range(self.design, r)
+    }
+
+    /// The term entries of all rows, as a struct column (for picking terms).
+    pub fn term_values(&self) -> &'a StructArray {
+        self.term_values
+    }
+
+    /// The terms of row `r` as a struct column.
+    pub fn terms_of(&self, r: usize) -> StructArray {
+        let range = self.term_range(r);
+        self.term_values.slice(range.start, range.len())
+    }
+
+    pub fn text(&self, field: FitField, r: usize) -> Option<&'a str> {
+        text_at(self.fits, field.name(), r)
+    }
+
+    pub fn float(&self, field: FitField, r: usize) -> Option<f64> {
+        float_at(self.fits, field.name(), r)
+    }
+
+    pub fn uint(&self, field: FitField, r: usize) -> Option<u64> {
+        let c = self
+            .fits
+            .column_by_name(field.name())?
+            .as_primitive_opt::<UInt64Type>()?;
+        (!c.is_null(r)).then(|| c.value(r))
+    }
+
+    pub fn family(&self, r: usize) -> Option<FamilyKind> {
+        self.text(FitField::Family, r).and_then(FamilyKind::parse)
+    }
+
+    pub fn term_text(&self, field: TermField, i: usize) -> Option<&'a str> {
+        text_at(self.term_values, field.name(), i)
+    }
+
+    pub fn term_float(&self, field: TermField, i: usize) -> Option<f64> {
+        float_at(self.term_values, field.name(), i)
+    }
+
+    pub fn predictor_text(&self, field: PredictorField, i: usize) -> Option<&'a str> {
+        text_at(self.predictor_values, field.name(), i)
+    }
+
+    /// The kind of predictor entry `i` (factor or a number).
+    pub fn predictor_is_factor(&self, i: usize) -> bool {
+        self.predictor_text(PredictorField::Kind, i) == Some(PredictorKind::Factor.report_name())
+    }
+
+    pub fn design_text(&self, field: DesignField, i: usize) -> Option<&'a str> {
+        text_at(self.design_values, field.name(), i)
+    }
+
+    pub fn design_index(&self, field: DesignField, i: usize) -> Option<u32> {
+        let c = self
+            .design_values
+            .column_by_name(field.name())?
+            .as_primitive_opt::<UInt32Type>()?;
+        (!c.is_null(i)).then(|| c.value(i))
+    }
+}
+
+fn text_at<'a>(s: &'a StructArray, field: &str, i: usize) -> Option<&'a str> {
+    let c = s.column_by_name(field)?.as_string_opt::<i32>()?;
+    (!c.is_null(i)).then(|| c.value(i))
+}
+
+fn float_at(s: &StructArray, field: &str, i: usize) -> Option<f64> {
+    let c = s.column_by_name(field)?.as_primitive_opt::<Float64Type>()?;
+    (!c.is_null(i)).then(|| c.value(i))
+}
