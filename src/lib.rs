@@ -7,5 +7,9 @@ pub mod glm;
 pub mod sql;
 
 pub use sql::{register_functions, register_functions_on_state};
+/// The command-line program (feature `cli`, on by default).
+#[cfg(feature = "cli")]
 pub mod cli;
+/// The seeded generator of the demo data (feature `cli`).
+#[cfg(feature = "cli")]
 pub mod demo;

@@ -5,10 +5,11 @@ use std::process::ExitCode;
 
 use clap::Parser;
 use ratesheet::cli::hints::Hints;
+use ratesheet::cli::output::{Format, Style, render, save_batches};
 use ratesheet::cli::progress::collect_with_progress;
-use ratesheet::cli::render::{Format, Style, render};
 use ratesheet::cli::session::{SessionSettings, new_session, open_table};
-use ratesheet::cli::shell::{Shell, save_batches};
+use ratesheet::cli::shell::Shell;
+use ratesheet::cli::statements::statements;
 use std::io::IsTerminal;
 
 /// mimalloc instead of the system allocator: aggregations allocate and free many large
@@ -78,40 +79,6 @@ fn parse_bytes(s: &str) -> Result<usize, String> {
         .ok_or_else(|| format!("--memory-limit {s}: expected a size such as 512M or 4G"))
 }
 
-/// Splits a script into statements at ';' outside quotes.
-fn statements(text: &str) -> Vec<String> {
-    let mut out = Vec::new();
-    let mut cur = String::new();
-    let mut quote: Option<char> = None;
-    for line in text.lines() {
-        let line = if quote.is_none() && line.trim_start().starts_with("--") {
-            ""
-        } else {
-            line
-        };
-        for c in line.chars() {
-            match (quote, c) {
-                (None, '\'' | '"') => quote = Some(c),
-                (Some(q), c) if c == q => quote = None,
-                (None, ';') => {
-                    if !cur.trim().is_empty() {
-                        out.push(std::mem::take(&mut cur));
-                    }
-                    cur.clear();
-                    continue;
-                }
-                _ => {}
-            }
-            cur.push(c);
-        }
-        cur.push('\n');
-    }
-    if !cur.trim().is_empty() {
-        out.push(cur);
-    }
-    out
-}
-
 #[tokio::main]
 async fn main() -> ExitCode {
     let args = Args::parse();
@@ -146,7 +113,7 @@ async fn main() -> ExitCode {
         };
     }
     if args.paths == ["demo"] && !std::path::Path::new("demo").exists() {
-        return run_demo(&ctx, args.digits).await;
+        return run_demo(&ctx, args.digits, &Hints::new(!args.no_hints)).await;
     }
     let interactive = args.execute.is_none() && args.script.is_none();
     if interactive && args.save_to.is_some() {
@@ -169,7 +136,7 @@ async fn main() -> ExitCode {
         format: args.format,
         digits: args.digits,
         max_rows: if interactive { 40 } else { usize::MAX },
-        width: ratesheet::cli::render::terminal_width(),
+        width: ratesheet::cli::output::terminal_width(),
     };
     let text = match (&args.execute, &args.script) {
         (Some(sql), _) => sql.clone(),
@@ -222,7 +189,7 @@ async fn main() -> ExitCode {
 }
 
 /// Opens the demo tables and runs the narrated demo script.
-async fn run_demo(ctx: &datafusion::prelude::SessionContext, digits: usize) -> ExitCode {
+async fn run_demo(ctx: &datafusion::prelude::SessionContext, digits: usize, hints: &Hints) -> ExitCode {
     let root = std::path::Path::new(env!("CARGO_MANIFEST_DIR"));
     let dir = if std::path::Path::new("demo-parquet").is_dir() {
         std::path::PathBuf::from("demo-parquet")
@@ -248,7 +215,7 @@ async fn run_demo(ctx: &datafusion::prelude::SessionContext, digits: usize) -> E
         format: Format::Table,
         digits,
         max_rows: 30,
-        width: ratesheet::cli::render::terminal_width(),
+        width: ratesheet::cli::output::terminal_width(),
     };
     println!("{}\n", ratesheet::cli::shell::CAUTION);
     for block in text.split("\n\n") {
@@ -263,14 +230,17 @@ async fn run_demo(ctx: &datafusion::prelude::SessionContext, digits: usize) -> E
         }
         println!("» {}", narration.join("\n  "));
         println!("  {}\n", sql.trim().replace('\n', "\n  "));
-        match async { ctx.sql(&sql).await?.collect().await }
-            .await
-            .and_then(|b| render(&b, &style))
-        {
-            Ok(out) => println!("{out}"),
-            Err(e) => {
-                eprintln!("error: {e}");
-                return ExitCode::FAILURE;
+        for statement in statements(&sql) {
+            let progress = std::io::stderr().is_terminal();
+            match collect_with_progress(ctx, &statement, progress, hints)
+                .await
+                .and_then(|b| render(&b, &style))
+            {
+                Ok(out) => println!("{out}"),
+                Err(e) => {
+                    eprintln!("error: {e}");
+                    return ExitCode::FAILURE;
+                }
             }
         }
     }

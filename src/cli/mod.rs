@@ -5,9 +5,9 @@
 
 pub mod guard;
 pub mod hints;
+pub mod output;
 pub mod progress;
-pub mod render;
 pub mod session;
 pub mod shell;
-pub mod spreadsheet;
+pub mod statements;
 pub mod workbook;

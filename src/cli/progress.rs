@@ -79,17 +79,27 @@ pub fn progress_text(read: usize, total: Option<usize>, elapsed: Duration) -> St
     }
 }
 
-/// Plans and runs `sql`, collecting its result; with `show`, a progress line is kept on stderr
-/// while it runs longer than [`QUIET_PERIOD`]. `hints` may print a hint about the plan first.
+/// Plans and runs `sql`, collecting its result: the one run path of the shell, `-e`, `--script`
+/// and the demo, planning and execution both under the panic guard. With `show`, a progress
+/// line is kept on stderr while it runs longer than [`QUIET_PERIOD`]; `hints` may print a hint
+/// about the plan first.
 pub async fn collect_with_progress(
     ctx: &SessionContext,
     sql: &str,
     show: bool,
     hints: &Hints,
 ) -> Result<Vec<RecordBatch>> {
-    let df = ctx.sql(sql).await?;
-    hints.after_planning(df.logical_plan());
-    let plan = df.create_physical_plan().await?;
+    // Planning reads file metadata too, so it runs under the guard as well.
+    let planning = {
+        let (ctx, sql) = (ctx.clone(), sql.to_string());
+        super::guard::without_panics("planning the statement", async move {
+            let df = ctx.sql(&sql).await?;
+            let logical = df.logical_plan().clone();
+            Ok((logical, df.create_physical_plan().await?))
+        })
+    };
+    let (logical, plan) = planning.await?;
+    hints.after_planning(&logical);
     let leaves = scans(&plan);
     let run = super::guard::without_panics("the query", collect(plan, ctx.task_ctx()));
     let explain = |e| naming_files(naming_limit(e, ctx), &leaves);

@@ -14,68 +14,95 @@ use rustyline::history::DefaultHistory;
 use rustyline::{Context, Editor, Helper, Highlighter, Hinter, Validator};
 
 use super::hints::Hints;
+use super::output::{Format, Style, render, save_batches};
 use super::progress::collect_with_progress;
-use super::render::{Format, Style, render};
 use super::session::open_table;
+use super::statements::split;
 
-/// One shell command: its name, argument synopsis and help line.
+/// What a shell command does (the shell dispatches on it; nothing matches command names).
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Action {
+    Tables,
+    Columns,
+    Open,
+    Help,
+    Format,
+    Digits,
+    Timing,
+    Hints,
+    Save,
+    Quit,
+}
+
+/// One shell command: its name, argument synopsis, help line and action.
 pub struct Command {
     pub name: &'static str,
     pub args: &'static str,
     pub help: &'static str,
+    pub action: Action,
 }
 
-/// Every shell command (the single definition used for parsing and help).
+/// Every shell command: the single definition used for dispatch, help and completion.
 pub const COMMANDS: &[Command] = &[
     Command {
         name: "tables",
         args: "",
         help: "list open tables with their row counts",
+        action: Action::Tables,
     },
     Command {
         name: "columns",
         args: "TABLE",
         help: "show a table's columns and types",
+        action: Action::Columns,
     },
     Command {
         name: "open",
         args: "PATH [NAME]",
         help: "open a Parquet/CSV file or folder as a table",
+        action: Action::Open,
     },
     Command {
         name: "help",
         args: "[FUNCTION]",
         help: "list ratesheet's SQL functions, or show one function's documentation",
+        action: Action::Help,
     },
     Command {
         name: "format",
         args: "table|csv|json|markdown",
         help: "choose how results are printed",
+        action: Action::Format,
     },
     Command {
         name: "digits",
         args: "N",
         help: "significant digits for numbers",
+        action: Action::Digits,
     },
     Command {
         name: "timing",
         args: "on|off",
         help: "show the time each statement took",
+        action: Action::Timing,
     },
     Command {
         name: "hints",
         args: "on|off",
         help: "one-line hints about SQL that is valid but rarely meant (each shows once)",
+        action: Action::Hints,
     },
     Command {
         name: "save",
         args: "FILE [replace]",
         help: "write the last result to FILE (.csv, .json lines, .parquet, or .xlsx with fits one row per term); 'replace' overwrites",
+        action: Action::Save,
     },
     Command {
         name: "quit",
         args: "",
         help: "leave the shell (Ctrl-D works too)",
+        action: Action::Quit,
     },
 ];
 
@@ -223,11 +250,11 @@ impl Shell {
         println!("ratesheet shell — SQL ends with ';', commands start with '{PREFIX}' ({PREFIX}help lists them).");
         let mut buffer = String::new();
         loop {
-            let prompt = if buffer.is_empty() { "rates> " } else { "  ...> " };
+            let prompt = if buffer.trim().is_empty() { "rates> " } else { "  ...> " };
             match editor.readline(prompt) {
                 Ok(line) => {
                     let trimmed = line.trim();
-                    if buffer.is_empty() && trimmed.starts_with(PREFIX) {
+                    if buffer.trim().is_empty() && trimmed.starts_with(PREFIX) {
                         let _ = editor.add_history_entry(trimmed);
                         if !self.command(&trimmed[1..]).await {
                             break;
@@ -237,12 +264,16 @@ impl Shell {
                     }
                     buffer.push_str(&line);
                     buffer.push('\n');
-                    if trimmed.ends_with(';') {
-                        let sql = std::mem::take(&mut buffer);
-                        let _ = editor.add_history_entry(sql.trim());
-                        self.execute(&sql).await;
-                        self.refresh_completion().await;
+                    let split = split(&buffer);
+                    if split.complete.is_empty() {
+                        continue;
                     }
+                    let _ = editor.add_history_entry(buffer.trim());
+                    for sql in &split.complete {
+                        self.execute(sql).await;
+                    }
+                    buffer = if split.is_pending() { split.rest } else { String::new() };
+                    self.refresh_completion().await;
                 }
                 Err(ReadlineError::Interrupted) => buffer.clear(),
                 Err(ReadlineError::Eof) => break,
@@ -281,7 +312,7 @@ impl Shell {
                 // Follow the terminal's width as the user resizes it.
                 let mut style = self.style;
                 if style.width.is_some() {
-                    style.width = super::render::terminal_width().or(style.width);
+                    style.width = super::output::terminal_width().or(style.width);
                 }
                 match render(&batches, &style) {
                     Ok(text) => print!("{text}"),
@@ -311,9 +342,9 @@ impl Shell {
             eprintln!("unknown command {PREFIX}{name}; {PREFIX}help lists the commands");
             return true;
         };
-        match cmd.name {
-            "quit" => return false,
-            "tables" => {
+        match cmd.action {
+            Action::Quit => return false,
+            Action::Tables => {
                 let sql = "SELECT table_name FROM information_schema.tables WHERE table_schema = 'public' ORDER BY 1";
                 if let Ok(df) = self.ctx.sql(sql).await {
                     if let Ok(batches) = df.collect().await {
@@ -334,7 +365,7 @@ impl Shell {
                     }
                 }
             }
-            "columns" => match args.first() {
+            Action::Columns => match args.first() {
                 Some(t) => match self.ctx.table(*t).await {
                     Ok(df) => {
                         for f in df.schema().fields() {
@@ -345,22 +376,22 @@ impl Shell {
                 },
                 None => eprintln!("usage: {PREFIX}columns TABLE"),
             },
-            "open" => match args.first() {
+            Action::Open => match args.first() {
                 Some(p) => match open_table(&self.ctx, p, args.get(1).copied()).await {
                     Ok(name) => println!("opened {p} as {name}"),
                     Err(e) => eprintln!("error: {e}"),
                 },
                 None => eprintln!("usage: {PREFIX}open PATH [NAME]"),
             },
-            "help" => print_help(args.first().copied()),
-            "format" => {
+            Action::Help => print_help(args.first().copied()),
+            Action::Format => {
                 use clap::ValueEnum;
                 match args.first().and_then(|f| Format::from_str(f, true).ok()) {
                     Some(f) => self.style.format = f,
                     None => eprintln!("usage: {PREFIX}format table|csv|json|markdown"),
                 }
             }
-            "digits" => match args
+            Action::Digits => match args
                 .first()
                 .and_then(|d| d.parse::<usize>().ok())
                 .filter(|d| (1..=17).contains(d))
@@ -368,17 +399,17 @@ impl Shell {
                 Some(d) => self.style.digits = d,
                 None => eprintln!("usage: {PREFIX}digits N (1 to 17)"),
             },
-            "timing" => match args.first().copied() {
+            Action::Timing => match args.first().copied() {
                 Some("on") => self.timing = true,
                 Some("off") => self.timing = false,
                 _ => eprintln!("usage: {PREFIX}timing on|off"),
             },
-            "hints" => match args.first().copied() {
+            Action::Hints => match args.first().copied() {
                 Some("on") => self.hints.set_enabled(true),
                 Some("off") => self.hints.set_enabled(false),
                 _ => eprintln!("usage: {PREFIX}hints on|off"),
             },
-            "save" => match args.first() {
+            Action::Save => match args.first() {
                 Some(path) => match save_batches(
                     &self.last,
                     path,
@@ -390,7 +421,6 @@ impl Shell {
                 },
                 None => eprintln!("usage: {PREFIX}save FILE [replace]"),
             },
-            _ => unreachable!("every command in COMMANDS is handled"),
         }
         true
     }
@@ -453,67 +483,5 @@ fn save_history(editor: &mut Editor<Completion, DefaultHistory>, path: &std::pat
     let tmp = path.with_extension("txt.partial");
     if editor.save_history(&tmp).is_ok() {
         let _ = std::fs::rename(&tmp, path);
-    }
-}
-
-/// Writes batches to `path` (format from the extension) through a temporary file renamed into
-/// place; refuses to overwrite an existing file unless `replace` (`how_to_replace` tells the
-/// user how to ask).
-pub fn save_batches(
-    batches: &[RecordBatch],
-    path: &str,
-    replace: bool,
-    how_to_replace: &str,
-) -> std::result::Result<usize, String> {
-    let target = std::path::Path::new(path);
-    if target.exists() && !replace {
-        return Err(format!("{path} exists; {how_to_replace}"));
-    }
-    let Some(first) = batches.first() else {
-        return Err("there is no result to save yet; run a query first".into());
-    };
-    let ext = target
-        .extension()
-        .and_then(|e| e.to_str())
-        .unwrap_or("")
-        .to_ascii_lowercase();
-    let tmp = target.with_extension(format!("{ext}.partial"));
-    let write = || -> std::result::Result<(), Box<dyn std::error::Error>> {
-        let file = std::fs::File::create(&tmp)?;
-        match ext.as_str() {
-            "parquet" => {
-                let mut w = datafusion::parquet::arrow::ArrowWriter::try_new(file, first.schema(), None)?;
-                for b in batches {
-                    w.write(b)?;
-                }
-                w.close()?;
-            }
-            "csv" | "json" => {
-                use std::io::Write;
-                let style = Style {
-                    format: if ext == "csv" { Format::Csv } else { Format::Json },
-                    digits: 17,
-                    max_rows: usize::MAX,
-                    width: None,
-                };
-                let mut file = file;
-                file.write_all(render(batches, &style)?.as_bytes())?;
-                file.sync_all()?;
-            }
-            "xlsx" => {
-                drop(file);
-                super::spreadsheet::write_xlsx(batches, &tmp)?;
-            }
-            other => return Err(format!("cannot save as '.{other}': use .csv, .json, .parquet or .xlsx").into()),
-        }
-        std::fs::rename(&tmp, target)?;
-        Ok(())
-    };
-    match write() {
-        Ok(()) => Ok(batches.iter().map(RecordBatch::num_rows).sum()),
-        Err(e) => {
-            let _ = std::fs::remove_file(&tmp);
-            Err(format!("{path}: {e}"))
-        }
     }
 }

@@ -155,7 +155,7 @@ fn save_to_writes_a_workbook_that_opens_again_as_a_table() {
 #[test]
 fn wide_tables_fold_to_the_terminal_width() {
     use datafusion::arrow::array::{ArrayRef, Float64Array, RecordBatch, StringArray};
-    use ratesheet::cli::render::{Format, Style, render};
+    use ratesheet::cli::output::{Format, Style, render};
     let mut columns: Vec<(String, ArrayRef)> = vec![(
         "district".into(),
         std::sync::Arc::new(StringArray::from(vec!["Riverside", "Kiln Row"])),

@@ -6,6 +6,7 @@ mod core_closed_form;
 mod core_reference;
 mod core_simulation;
 mod demo;
+mod features;
 mod fuzz_inputs;
 mod hostile_files;
 mod limits;

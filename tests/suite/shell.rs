@@ -135,7 +135,7 @@ async fn xlsx_results_have_one_row_per_group_and_term() {
         .unwrap();
     let home = temp_home("xlsx");
     let target = home.join("fits.xlsx");
-    let rows = ratesheet::cli::shell::save_batches(&batches, target.to_str().unwrap(), false, "").unwrap();
+    let rows = ratesheet::cli::output::save_batches(&batches, target.to_str().unwrap(), false, "").unwrap();
     assert_eq!(rows, 10);
     let mut archive = zip::ZipArchive::new(std::fs::File::open(&target).unwrap()).unwrap();
     let mut sheet = String::new();

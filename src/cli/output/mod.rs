@@ -1,0 +1,72 @@
+//! Every output format in one place: results printed to the terminal or a pipe ([`render`]:
+//! text tables, CSV, JSON lines, Markdown) and results saved to a file ([`save_batches`]: CSV,
+//! JSON lines, Parquet, or an XLSX workbook with fits one row per term).
+
+use datafusion::arrow::array::RecordBatch;
+
+pub mod render;
+pub mod spreadsheet;
+
+pub use render::{Format, Style, format_number, format_p, render, terminal_width};
+
+/// Writes batches to `path` (format from the extension) through a temporary file renamed into
+/// place; refuses to overwrite an existing file unless `replace` (`how_to_replace` tells the
+/// user how to ask).
+pub fn save_batches(
+    batches: &[RecordBatch],
+    path: &str,
+    replace: bool,
+    how_to_replace: &str,
+) -> std::result::Result<usize, String> {
+    let target = std::path::Path::new(path);
+    if target.exists() && !replace {
+        return Err(format!("{path} exists; {how_to_replace}"));
+    }
+    let Some(first) = batches.first() else {
+        return Err("there is no result to save yet; run a query first".into());
+    };
+    let ext = target
+        .extension()
+        .and_then(|e| e.to_str())
+        .unwrap_or("")
+        .to_ascii_lowercase();
+    let tmp = target.with_extension(format!("{ext}.partial"));
+    let write = || -> std::result::Result<(), Box<dyn std::error::Error>> {
+        let file = std::fs::File::create(&tmp)?;
+        match ext.as_str() {
+            "parquet" => {
+                let mut w = datafusion::parquet::arrow::ArrowWriter::try_new(file, first.schema(), None)?;
+                for b in batches {
+                    w.write(b)?;
+                }
+                w.close()?;
+            }
+            "csv" | "json" => {
+                use std::io::Write;
+                let style = Style {
+                    format: if ext == "csv" { Format::Csv } else { Format::Json },
+                    digits: 17,
+                    max_rows: usize::MAX,
+                    width: None,
+                };
+                let mut file = file;
+                file.write_all(render(batches, &style)?.as_bytes())?;
+                file.sync_all()?;
+            }
+            "xlsx" => {
+                drop(file);
+                spreadsheet::write_xlsx(batches, &tmp)?;
+            }
+            other => return Err(format!("cannot save as '.{other}': use .csv, .json, .parquet or .xlsx").into()),
+        }
+        std::fs::rename(&tmp, target)?;
+        Ok(())
+    };
+    match write() {
+        Ok(()) => Ok(batches.iter().map(RecordBatch::num_rows).sum()),
+        Err(e) => {
+            let _ = std::fs::remove_file(&tmp);
+            Err(format!("{path}: {e}"))
+        }
+    }
+}
