@@ -124,12 +124,15 @@ pub fn encode(kind: FitKind, content: StateContent<'_>) -> Result<Vec<ArrayRef>>
     for values in content.predictors {
         out.push(list(&used, values));
     }
-    let columns: Vec<ArrayRef> = (0..Sums::NAMES.len())
-        .map(|k| {
-            Arc::new(Float64Array::from_iter_values(
-                content.sums.iter().map(|s| s.to_array()[k]),
-            )) as ArrayRef
-        })
+    let mut values: Vec<Vec<f64>> = vec![Vec::with_capacity(content.sums.len()); Sums::NAMES.len()];
+    for s in &content.sums {
+        for (column, v) in values.iter_mut().zip(s.to_array()) {
+            column.push(v);
+        }
+    }
+    let columns: Vec<ArrayRef> = values
+        .into_iter()
+        .map(|v| Arc::new(Float64Array::from(v)) as ArrayRef)
         .collect();
     out.push(list(
         &patterns,
@@ -281,11 +284,11 @@ fn decode_sums(values: &ArrayRef) -> Result<Vec<Sums>> {
                 .ok_or_else(|| state_error(format!("the pattern sums have no Float64 field {name}")))
         })
         .collect::<Result<_>>()?;
+    if columns.iter().any(|c| c.null_count() > 0) {
+        return Err(state_error("a pattern sum is NULL".into()));
+    }
     (0..s.len())
         .map(|i| {
-            if columns.iter().any(|c| c.is_null(i)) {
-                return Err(state_error("a pattern sum is NULL".into()));
-            }
             Sums::from_array(std::array::from_fn(|k| columns[k].value(i)))
                 .ok_or_else(|| state_error("pattern sums are not valid".into()))
         })
