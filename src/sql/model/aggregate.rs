@@ -4,15 +4,18 @@
 
 use std::sync::Arc;
 
+use datafusion::arrow::array::{ArrayRef, BooleanArray};
 use datafusion::arrow::datatypes::{DataType, FieldRef};
+use datafusion::common::ScalarValue;
 use datafusion::error::{DataFusionError, Result};
 use datafusion::logical_expr::function::{AccumulatorArgs, AggregateFunctionSimplification, StateFieldsArgs};
 use datafusion::logical_expr::{
-    Accumulator, AggregateUDFImpl, Documentation, GroupsAccumulator, Signature, Volatility,
+    Accumulator, AggregateUDFImpl, Documentation, EmitTo, GroupsAccumulator, Signature, Volatility,
 };
 
+use super::evaluate::evaluate_groups;
 use super::fields::fit_type;
-use super::group_buffer::{FitGroups, GroupBuffer, SingleGroup};
+use super::group_buffer::GroupBuffer;
 use super::patterns::GroupPatterns;
 use super::rows::GroupRows;
 use super::spec::{BufferKind, FitKind, ModelSpec, PredictorKind, is_numeric_type, resolve_call, spec_at_execution};
@@ -155,6 +158,76 @@ impl AggregateUDFImpl for FitFunction {
 
     fn documentation(&self) -> Option<&Documentation> {
         Some((self.documentation)())
+    }
+}
+
+/// The groups accumulator of a fit function over buffer `B`.
+#[derive(Debug)]
+pub struct FitGroups<B: GroupBuffer> {
+    pub buffer: B,
+}
+
+impl<B: GroupBuffer> GroupsAccumulator for FitGroups<B> {
+    fn update_batch(
+        &mut self,
+        values: &[ArrayRef],
+        group_indices: &[usize],
+        opt_filter: Option<&BooleanArray>,
+        total_num_groups: usize,
+    ) -> Result<()> {
+        self.buffer.update(values, group_indices, opt_filter, total_num_groups)
+    }
+
+    fn evaluate(&mut self, emit_to: EmitTo) -> Result<ArrayRef> {
+        Ok(Arc::new(evaluate_groups(&self.buffer.take(emit_to))?))
+    }
+
+    fn state(&mut self, emit_to: EmitTo) -> Result<Vec<ArrayRef>> {
+        self.buffer.take(emit_to).to_state()
+    }
+
+    fn merge_batch(&mut self, values: &[ArrayRef], group_indices: &[usize], total_num_groups: usize) -> Result<()> {
+        self.buffer.merge(values, group_indices, total_num_groups)
+    }
+
+    fn convert_to_state(&self, values: &[ArrayRef], opt_filter: Option<&BooleanArray>) -> Result<Vec<ArrayRef>> {
+        self.buffer.convert_to_state(values, opt_filter)
+    }
+
+    fn size(&self) -> usize {
+        self.buffer.size()
+    }
+}
+
+/// The plain accumulator: the groups accumulator with a single group.
+#[derive(Debug)]
+pub struct SingleGroup<B: GroupBuffer>(pub FitGroups<B>);
+
+impl<B: GroupBuffer> Accumulator for SingleGroup<B> {
+    fn update_batch(&mut self, values: &[ArrayRef]) -> Result<()> {
+        let n = values.first().map_or(0, |a| a.len());
+        self.0.update_batch(values, &vec![0; n], None, 1)
+    }
+
+    fn evaluate(&mut self) -> Result<ScalarValue> {
+        self.0.buffer.common_mut().counts.ensure(1);
+        let array = self.0.evaluate(EmitTo::All)?;
+        ScalarValue::try_from_array(&array, 0)
+    }
+
+    fn size(&self) -> usize {
+        self.0.size() + std::mem::size_of::<Self>()
+    }
+
+    fn state(&mut self) -> Result<Vec<ScalarValue>> {
+        self.0.buffer.common_mut().counts.ensure(1);
+        let arrays = self.0.state(EmitTo::All)?;
+        arrays.iter().map(|a| ScalarValue::try_from_array(a, 0)).collect()
+    }
+
+    fn merge_batch(&mut self, states: &[ArrayRef]) -> Result<()> {
+        let n = states.first().map_or(0, |a| a.len());
+        self.0.merge_batch(states, &vec![0; n], 1)
     }
 }
 

@@ -7,68 +7,14 @@ use datafusion::error::{DataFusionError, Result};
 
 use super::decode::Dictionary;
 use super::fields::{DesignEntry, FitColumns, GroupReport, PredictorInfo};
-use super::group_buffer::GroupBuffer;
-use super::spec::{BufferKind, ModelSpec};
-use crate::glm::collapse::{Sums, fit_poisson_patterns};
+use super::group_buffer::{Column, GroupBuffer, GroupData, Response};
+use super::spec::BufferKind;
+use crate::glm::collapse::fit_poisson_patterns;
 use crate::glm::design::full_coded_factor;
 use crate::glm::{
     Design, DesignSpec, FactorColumn, FamilyKind, FitInput, Gaussian, GlmFit, Poisson, Predictor, PredictorValues, fit,
     term_table,
 };
-
-/// One predictor's values for the design rows of a group (factor codes index the predictor's
-/// dictionary).
-#[derive(Debug, Clone)]
-pub enum Column {
-    Numeric(Vec<f64>),
-    Factor(Vec<u32>),
-}
-
-/// What the design rows of one group stand for.
-pub enum Response {
-    /// One design row per data row.
-    Rows { y: Vec<f64>, exposure: Vec<f64> },
-    /// One design row per covariate pattern, with the sums of its rows.
-    Patterns(Vec<Sums>),
-}
-
-/// One group's data: predictor values per design row, and the response.
-pub struct GroupData<'a> {
-    pub spec: &'a ModelSpec,
-    pub dictionaries: &'a [Dictionary],
-    pub skipped: u64,
-    pub invalid: u64,
-    pub columns: Vec<Column>,
-    pub response: Response,
-}
-
-impl GroupData<'_> {
-    /// Number of design rows.
-    fn design_rows(&self) -> usize {
-        match &self.response {
-            Response::Rows { y, .. } => y.len(),
-            Response::Patterns(s) => s.len(),
-        }
-    }
-
-    /// Number of data rows used.
-    fn data_rows(&self) -> usize {
-        match &self.response {
-            Response::Rows { y, .. } => y.len(),
-            Response::Patterns(s) => s.iter().map(Sums::rows).sum(),
-        }
-    }
-
-    fn totals(&self) -> (f64, f64) {
-        match &self.response {
-            Response::Rows { y, exposure } => (y.iter().sum(), exposure.iter().sum()),
-            Response::Patterns(s) => (
-                s.iter().map(Sums::total_count).sum(),
-                s.iter().map(Sums::total_exposure).sum(),
-            ),
-        }
-    }
-}
 
 /// Fits every group of `buffer` and returns one struct per group.
 pub fn evaluate_groups<B: GroupBuffer>(buffer: &B) -> Result<StructArray> {

@@ -1,21 +1,19 @@
 //! The one interface both group buffers implement ([`GroupBuffer`]), and everything they share:
 //! the row policy and counts, the merge scaffolding over the state codec, taking groups out,
-//! `convert_to_state`, the canonical order of a group's items, and the DataFusion accumulators
-//! ([`FitGroups`], and [`SingleGroup`] for the plain `Accumulator`, which is the groups
-//! accumulator run with one group).
+//! `convert_to_state`, the canonical order of a group's items, and the data of one group handed
+//! to evaluation ([`GroupData`]).
 
 use std::cmp::Ordering;
 use std::sync::Arc;
 
 use datafusion::arrow::array::{ArrayRef, BooleanArray};
-use datafusion::common::ScalarValue;
 use datafusion::error::Result;
-use datafusion::logical_expr::{Accumulator, EmitTo, GroupsAccumulator};
+use datafusion::logical_expr::EmitTo;
 
 use super::decode::{BatchInputs, Dictionary, GroupCounts, admit, state_error};
-use super::evaluate::{Column, GroupData, Response, evaluate_groups};
 use super::spec::ModelSpec;
 use super::state::{DecodedState, Layout, StateContent, decode, encode};
+use crate::glm::collapse::Sums;
 
 /// What every buffer holds besides its data: the spec, one dictionary per predictor (factor
 /// labels; empty for numbers) and the per-group counts of rows left out.
@@ -237,72 +235,56 @@ pub fn label_hashes(common: &Common) -> Vec<Vec<u64>> {
         .collect()
 }
 
-/// The groups accumulator of a fit function over buffer `B`.
-#[derive(Debug)]
-pub struct FitGroups<B: GroupBuffer> {
-    pub buffer: B,
+/// One predictor's values for the design rows of a group (factor codes index the predictor's
+/// dictionary).
+#[derive(Debug, Clone)]
+pub enum Column {
+    Numeric(Vec<f64>),
+    Factor(Vec<u32>),
 }
 
-impl<B: GroupBuffer> GroupsAccumulator for FitGroups<B> {
-    fn update_batch(
-        &mut self,
-        values: &[ArrayRef],
-        group_indices: &[usize],
-        opt_filter: Option<&BooleanArray>,
-        total_num_groups: usize,
-    ) -> Result<()> {
-        self.buffer.update(values, group_indices, opt_filter, total_num_groups)
-    }
-
-    fn evaluate(&mut self, emit_to: EmitTo) -> Result<ArrayRef> {
-        Ok(Arc::new(evaluate_groups(&self.buffer.take(emit_to))?))
-    }
-
-    fn state(&mut self, emit_to: EmitTo) -> Result<Vec<ArrayRef>> {
-        self.buffer.take(emit_to).to_state()
-    }
-
-    fn merge_batch(&mut self, values: &[ArrayRef], group_indices: &[usize], total_num_groups: usize) -> Result<()> {
-        self.buffer.merge(values, group_indices, total_num_groups)
-    }
-
-    fn convert_to_state(&self, values: &[ArrayRef], opt_filter: Option<&BooleanArray>) -> Result<Vec<ArrayRef>> {
-        self.buffer.convert_to_state(values, opt_filter)
-    }
-
-    fn size(&self) -> usize {
-        self.buffer.size()
-    }
+/// What the design rows of one group stand for.
+pub enum Response {
+    /// One design row per data row.
+    Rows { y: Vec<f64>, exposure: Vec<f64> },
+    /// One design row per covariate pattern, with the sums of its rows.
+    Patterns(Vec<Sums>),
 }
 
-/// The plain accumulator: the groups accumulator with a single group.
-#[derive(Debug)]
-pub struct SingleGroup<B: GroupBuffer>(pub FitGroups<B>);
+/// One group's data: predictor values per design row, and the response.
+pub struct GroupData<'a> {
+    pub spec: &'a ModelSpec,
+    pub dictionaries: &'a [Dictionary],
+    pub skipped: u64,
+    pub invalid: u64,
+    pub columns: Vec<Column>,
+    pub response: Response,
+}
 
-impl<B: GroupBuffer> Accumulator for SingleGroup<B> {
-    fn update_batch(&mut self, values: &[ArrayRef]) -> Result<()> {
-        let n = values.first().map_or(0, |a| a.len());
-        self.0.update_batch(values, &vec![0; n], None, 1)
+impl GroupData<'_> {
+    /// Number of design rows.
+    pub fn design_rows(&self) -> usize {
+        match &self.response {
+            Response::Rows { y, .. } => y.len(),
+            Response::Patterns(s) => s.len(),
+        }
     }
 
-    fn evaluate(&mut self) -> Result<ScalarValue> {
-        self.0.buffer.common_mut().counts.ensure(1);
-        let array = self.0.evaluate(EmitTo::All)?;
-        ScalarValue::try_from_array(&array, 0)
+    /// Number of data rows used.
+    pub fn data_rows(&self) -> usize {
+        match &self.response {
+            Response::Rows { y, .. } => y.len(),
+            Response::Patterns(s) => s.iter().map(Sums::rows).sum(),
+        }
     }
 
-    fn size(&self) -> usize {
-        self.0.size() + std::mem::size_of::<Self>()
-    }
-
-    fn state(&mut self) -> Result<Vec<ScalarValue>> {
-        self.0.buffer.common_mut().counts.ensure(1);
-        let arrays = self.0.state(EmitTo::All)?;
-        arrays.iter().map(|a| ScalarValue::try_from_array(a, 0)).collect()
-    }
-
-    fn merge_batch(&mut self, states: &[ArrayRef]) -> Result<()> {
-        let n = states.first().map_or(0, |a| a.len());
-        self.0.merge_batch(states, &vec![0; n], 1)
+    pub fn totals(&self) -> (f64, f64) {
+        match &self.response {
+            Response::Rows { y, exposure } => (y.iter().sum(), exposure.iter().sum()),
+            Response::Patterns(s) => (
+                s.iter().map(Sums::total_count).sum(),
+                s.iter().map(Sums::total_exposure).sum(),
+            ),
+        }
     }
 }

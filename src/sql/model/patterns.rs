@@ -14,8 +14,7 @@ use datafusion::arrow::array::{Array, ArrayRef, Float64Array, StringArray};
 use datafusion::error::Result;
 
 use super::decode::{BatchColumn, BatchInputs, FastMap, decode_predictors, state_error};
-use super::evaluate::{Column, GroupData, Response};
-use super::group_buffer::{Common, GroupBuffer, label_hashes, mix};
+use super::group_buffer::{Column, Common, GroupBuffer, GroupData, Response, label_hashes, mix};
 use super::spec::ModelSpec;
 use super::state::{DecodedState, Layout, StateContent};
 use crate::glm::collapse::Sums;

@@ -12,8 +12,7 @@ use datafusion::arrow::array::{ArrayRef, Float64Array, StringArray};
 use datafusion::error::Result;
 
 use super::decode::{BatchColumn, BatchInputs};
-use super::evaluate::{Column, GroupData, Response};
-use super::group_buffer::{Common, GroupBuffer, label_hashes, mix};
+use super::group_buffer::{Column, Common, GroupBuffer, GroupData, Response, label_hashes, mix};
 use super::spec::ModelSpec;
 use super::state::{DecodedState, Layout, StateContent};
 
