@@ -111,8 +111,11 @@ fn every_hostile_kind_is_refused_naming_the_file_and_the_shell_goes_on() {
             answer = p.exp_string("rates> ").unwrap();
         }
         assert!(
-            answer.contains(path.as_str()) && answer.contains(says) && !answer.contains("panicked"),
-            "{path}: expected an error naming the file and saying '{says}', got:\n{answer}"
+            answer.contains(path.as_str())
+                && answer.contains(says)
+                && !ratesheet::cli::guard::is_caught_panic(&answer)
+                && !answer.contains("panicked"),
+            "{path}: expected a refusal (not a caught panic) naming the file and saying '{says}', got:\n{answer}"
         );
     }
     p.send_line(&format!("~open {}", semi.display())).unwrap();
@@ -164,23 +167,43 @@ pub fn damaged_copies(demo: &[u8], count: usize) -> Vec<(String, Vec<u8>)> {
         .collect()
 }
 
-/// What happened to one damaged file.
-#[derive(Debug, PartialEq)]
+/// What happened to one damaged file. A panic that escapes the guard is a problem, not an
+/// outcome.
+#[derive(Debug, Clone, Copy, PartialEq)]
 enum Outcome {
     RefusedWhenOpened,
     RefusedWhenRead,
     Read,
+    PanicCaughtWhenOpened,
+    PanicCaughtWhenRead,
+}
+
+/// An error must name the file; a caught panic is told apart by the guard's mark.
+fn classify(text: &str, path: &str, refused: Outcome, caught: Outcome) -> Result<Outcome, String> {
+    if !text.contains(path) {
+        return Err(format!("error does not name the file: {text}"));
+    }
+    Ok(if ratesheet::cli::guard::is_caught_panic(text) {
+        caught
+    } else {
+        refused
+    })
 }
 
 async fn try_damaged(path: &str) -> Result<Outcome, String> {
-    let ctx = ratesheet::cli::session::new_session(&Default::default()).unwrap();
+    // Two partitions whatever the machine, so that the breakdown is the same everywhere.
+    let settings = ratesheet::cli::session::SessionSettings {
+        threads: Some(2),
+        ..Default::default()
+    };
+    let ctx = ratesheet::cli::session::new_session(&settings).unwrap();
     if let Err(e) = ratesheet::cli::session::open_table(&ctx, path, Some("damaged")).await {
-        let text = e.to_string();
-        return if text.contains(path) {
-            Ok(Outcome::RefusedWhenOpened)
-        } else {
-            Err(format!("error does not name the file: {text}"))
-        };
+        return classify(
+            &e.to_string(),
+            path,
+            Outcome::RefusedWhenOpened,
+            Outcome::PanicCaughtWhenOpened,
+        );
     }
     let sql = "SELECT COUNT(*), SUM(breaks), poisson_fit(breaks, km_years, material)['status'] FROM damaged";
     let run = tokio::spawn(async move {
@@ -190,10 +213,27 @@ async fn try_damaged(path: &str) -> Result<Outcome, String> {
     });
     match run.await {
         Ok(Ok(_)) => Ok(Outcome::Read),
-        Ok(Err(text)) if text.contains(path) => Ok(Outcome::RefusedWhenRead),
-        Ok(Err(text)) => Err(format!("error does not name the file: {text}")),
-        Err(e) => Err(format!("the query panicked: {e}")),
+        Ok(Err(text)) => classify(&text, path, Outcome::RefusedWhenRead, Outcome::PanicCaughtWhenRead),
+        Err(e) => Err(format!("a panic escaped the guard: {e}")),
     }
+}
+
+/// A panic inside the guard becomes an error that names what was read and carries the mark.
+#[tokio::test]
+async fn a_panic_inside_the_guard_becomes_a_marked_error_naming_what_was_read() {
+    let e = ratesheet::cli::guard::without_panics("x.parquet", async {
+        if std::hint::black_box(true) {
+            panic!("boom");
+        }
+        Ok::<(), datafusion::error::DataFusionError>(())
+    })
+    .await
+    .unwrap_err()
+    .to_string();
+    assert!(
+        ratesheet::cli::guard::is_caught_panic(&e) && e.contains("x.parquet") && e.contains("boom"),
+        "{e}"
+    );
 }
 
 /// Corpus size: 400 in the regular run; `RATESHEET_LONG=1` tries 20,000.
@@ -209,7 +249,7 @@ fn corpus_size() -> usize {
 async fn damaged_parquet_files_never_panic_and_errors_name_the_file() {
     let dir = temp_dir("damaged");
     let demo = std::fs::read(DEMO).unwrap();
-    let mut tally = [0usize; 3];
+    let mut tally = [0usize; 5];
     let mut problems = Vec::new();
     for (i, (how, bytes)) in damaged_copies(&demo, corpus_size()).into_iter().enumerate() {
         let path = dir.join(format!("damaged_{i}.parquet"));
@@ -220,10 +260,11 @@ async fn damaged_parquet_files_never_panic_and_errors_name_the_file() {
         }
         std::fs::remove_file(&path).unwrap();
     }
-    eprintln!(
-        "damaged Parquet corpus: {} refused when opened, {} refused when read, {} read",
-        tally[0], tally[1], tally[2]
+    let summary = format!(
+        "{} refused when opened, {} when read, {} read; reader panics caught by the guard: {} when opened, {} when read",
+        tally[0], tally[1], tally[2], tally[3], tally[4]
     );
+    eprintln!("damaged Parquet corpus ({} files): {summary}", corpus_size());
     std::fs::remove_dir_all(&dir).ok();
     assert!(
         problems.is_empty(),
@@ -231,5 +272,13 @@ async fn damaged_parquet_files_never_panic_and_errors_name_the_file() {
         problems.len(),
         problems.join("\n")
     );
-    assert!(tally[0] > 0 && tally[1] + tally[2] > 0, "{tally:?}");
+    assert_eq!(tally.iter().sum::<usize>(), corpus_size());
+    if corpus_size() == 400 {
+        // The README states the regular run's breakdown; it must be this run's.
+        let readme = std::fs::read_to_string(concat!(env!("CARGO_MANIFEST_DIR"), "/README.md")).unwrap();
+        assert!(
+            readme.contains(&summary),
+            "README.md does not state this run's breakdown: {summary}"
+        );
+    }
 }
