@@ -87,6 +87,45 @@ def poisson_block(y, X, offset, names):
     }
 
 
+def documentation_examples():
+    """The value each SQL function's documentation example returns, computed independently."""
+    poisson = sm.families.Poisson()
+    four = pd.DataFrame(
+        {"breaks": [12, 3, 9, 2], "km_years": [40.0, 30.0, 35.0, 28.0], "material": ["iron", "pvc", "iron", "pvc"]}
+    )
+    X = pd.DataFrame({"intercept": 1.0, "material=pvc": indicator(four, "material", "pvc")})
+    full = sm.GLM(four["breaks"], X, family=poisson, offset=np.log(four["km_years"])).fit(**FIT)
+    null = sm.GLM(four["breaks"], X[["intercept"]], family=poisson, offset=np.log(four["km_years"])).fit(**FIT)
+    lr = 2 * (full.llf - null.llf)
+    six = pd.DataFrame(
+        {
+            "breaks": [3, 6, 4, 2, 2, 3],
+            "km_years": [10.0, 10.0, 12.0, 9.0, 11.0, 10.0],
+            "material": ["iron", "iron", "iron", "pvc", "pvc", "pvc"],
+            "age": [10.0, 30.0, 20.0, 10.0, 30.0, 20.0],
+        }
+    )
+    pvc = indicator(six, "material", "pvc")
+    Xi = pd.DataFrame({"intercept": 1.0, "material=pvc": pvc, "age": six["age"], "material=pvc:age": pvc * six["age"]})
+    inter = sm.GLM(six["breaks"], Xi, family=poisson, offset=np.log(six["km_years"])).fit(**FIT)
+    season = pd.DataFrame({"callouts": [5, 7, 2, 3], "season": ["winter", "winter", "summer", "summer"]})
+    Xs = pd.DataFrame({"intercept": 1.0, "season=winter": indicator(season, "season", "winter")})
+    counts = sm.GLM(season["callouts"], Xs, family=poisson).fit(**FIT)
+    lin = pd.DataFrame({"breaks": [1, 3, 4, 9], "age": [10.0, 20.0, 30.0, 40.0]})
+    ols = sm.OLS(np.log(lin["breaks"] + 1.0), sm.add_constant(lin["age"])).fit()
+    return {
+        "poisson_fit": {"call": "exp(GLM Poisson offset=log(km_years) param material=pvc)", "value": float(np.exp(full.params["material=pvc"]))},
+        "fit_term": {"call": "same as poisson_fit", "value": float(np.exp(full.params["material=pvc"]))},
+        "fit_expected": {"call": "sum(breaks) / sum(fittedvalues) of the same GLM", "value": float(four["breaks"].sum() / full.fittedvalues.sum())},
+        "fit_lr_test": {"call": "scipy.stats.chi2.sf(2*(llf_full - llf_null), 1)", "value": float(stats.chi2.sf(lr, 1))},
+        "interaction": {"call": "GLM Poisson with material, age, material:age; param material=pvc:age", "value": float(inter.params["material=pvc:age"])},
+        "poisson_count_fit": {"call": "GLM Poisson callouts ~ season: pearson_chi2 / df_resid", "value": float(counts.pearson_chi2 / counts.df_resid)},
+        "linear_fit": {"call": "sm.OLS(log(breaks + 1), [1, age]).fit().params['age']", "value": float(ols.params["age"])},
+        "rate_ratio_test": {"call": "scipy.stats.binomtest(32, 34, 52407/(52407+18790)).pvalue", "value": float(stats.binomtest(32, 34, 52407 / (52407 + 18790)).pvalue)},
+        "rate_interval": {"call": "scipy.stats.chi2.ppf(0.975, 2*(5+1)) / 2 / 1000 (Garwood upper limit)", "value": float(stats.chi2.ppf(0.975, 12) / 2 / 1000)},
+    }
+
+
 def main():
     out = {
         "generated_with": {
@@ -250,6 +289,8 @@ def main():
             }
         )
     out["two_rate_exact_tests"] = cases
+
+    out["documentation_examples"] = documentation_examples()
 
     OUT.write_text(json.dumps(out, indent=1) + "\n")
     print(f"wrote {OUT}")

@@ -5,12 +5,16 @@
 //! Check values: insurance.json (statsmodels 0.15.0 GLM, cross-checked with R glm) for the
 //! per-District and pooled fits; the other comparisons are between routes through the engine.
 
+use std::collections::BTreeSet;
 use std::sync::Arc;
 
 use datafusion::arrow::array::{Array, AsArray, RecordBatch, StructArray};
+use datafusion::arrow::datatypes::UInt32Type;
 use datafusion::execution::memory_pool::FairSpillPool;
 use datafusion::execution::runtime_env::RuntimeEnvBuilder;
 use datafusion::logical_expr::Partitioning;
+use datafusion::physical_plan::ExecutionPlan;
+use datafusion::physical_plan::aggregates::{AggregateExec, AggregateMode};
 use datafusion::prelude::{CsvReadOptions, SessionConfig, SessionContext, col};
 use serde_json::Value;
 
@@ -346,58 +350,130 @@ fn spill_count(plan: &dyn datafusion::physical_plan::ExecutionPlan) -> usize {
 
 /// With no GROUP BY DataFusion uses the plain accumulator; with one it uses the groups
 /// accumulator. Both must give the same fit.
+/// Per aggregate node of `sql`'s plan: whether it has no GROUP BY (DataFusion then runs the
+/// plain `Accumulator`; otherwise our `GroupsAccumulator`).
+async fn no_grouping(ctx: &SessionContext, sql: &str) -> Vec<bool> {
+    fn walk(p: &Arc<dyn ExecutionPlan>, out: &mut Vec<bool>) {
+        if let Some(a) = p.downcast_ref::<AggregateExec>() {
+            out.push(a.group_expr().is_true_no_grouping());
+        }
+        p.children().into_iter().for_each(|c| walk(c, out));
+    }
+    let plan = ctx.sql(sql).await.unwrap().create_physical_plan().await.unwrap();
+    let mut out = Vec::new();
+    walk(&plan, &mut out);
+    assert!(!out.is_empty(), "no aggregate in the plan of {sql}");
+    out
+}
+
+/// The group buffers ("rows", "pattern sums") whose states the partial aggregation of `sql`
+/// emits, read from the state's codec field (sql::model::state: version << 8 | layout).
+async fn partial_layouts(ctx: &SessionContext, sql: &str) -> BTreeSet<&'static str> {
+    fn partial(p: &Arc<dyn ExecutionPlan>) -> Option<Arc<dyn ExecutionPlan>> {
+        if p.downcast_ref::<AggregateExec>()
+            .is_some_and(|a| *a.mode() == AggregateMode::Partial)
+        {
+            return Some(p.clone());
+        }
+        p.children().into_iter().find_map(partial)
+    }
+    let plan = ctx.sql(sql).await.unwrap().create_physical_plan().await.unwrap();
+    let node = partial(&plan).unwrap_or_else(|| {
+        panic!(
+            "no partial aggregation:\n{}",
+            datafusion::physical_plan::displayable(plan.as_ref()).indent(true)
+        )
+    });
+    let schema = node.schema();
+    let codec = schema
+        .fields()
+        .iter()
+        .position(|f| f.name().ends_with("[codec]"))
+        .expect("a codec field in the partial state");
+    let mut out = BTreeSet::new();
+    for b in datafusion::physical_plan::collect(node, ctx.task_ctx()).await.unwrap() {
+        for v in b.column(codec).as_primitive::<UInt32Type>().values() {
+            out.insert(match v & 0xff {
+                0 => "rows",
+                1 => "pattern sums",
+                other => panic!("layout {other}"),
+            });
+        }
+    }
+    out
+}
+
 #[tokio::test]
 async fn plain_and_groups_accumulators_agree() {
+    let expected = load_json("reference/expected/insurance.json");
+    let district1 = &expected["per_group"][0]["groups"][0];
+    assert_eq!(district1["group"], 1);
     let ctx = context(2);
     register_insurance(&ctx).await;
-    let plain = collect(
-        &ctx,
-        "SELECT '1', poisson_fit(claims, holders, car_group, age_band) FROM insurance WHERE district = '1'",
-    )
-    .await;
-    let grouped = collect(
-        &ctx,
-        "SELECT district, poisson_fit(claims, holders, car_group, age_band) FROM insurance WHERE district = '1' GROUP BY district",
-    )
-    .await;
+    let fit = "poisson_fit(claims, holders, car_group, age_band, 'ref.car_group=<1l, ref.age_band=<25')";
+    let plain_sql = format!("SELECT '1', {fit} FROM insurance WHERE district = '1'");
+    let grouped_sql = format!("SELECT district, {fit} FROM insurance WHERE district = '1' GROUP BY district");
+    assert!(
+        no_grouping(&ctx, &plain_sql).await.iter().all(|&g| g),
+        "the plain query was planned with a GROUP BY"
+    );
+    assert!(
+        no_grouping(&ctx, &grouped_sql).await.iter().all(|&g| !g),
+        "the grouped query lost its GROUP BY"
+    );
+    let (plain, grouped) = (collect(&ctx, &plain_sql).await, collect(&ctx, &grouped_sql).await);
+    // Both paths against statsmodels (insurance.json per_group District 1), then against each other.
+    for (label, batches) in [("plain", &plain), ("groups", &grouped)] {
+        let rows = fits(batches);
+        assert_eq!(rows.len(), 1, "{label}");
+        check_against(label, &rows[0].1, rows[0].2, &district1["poisson"]);
+    }
     assert_same("plain vs groups", &fingerprint(&plain), &fingerprint(&grouped), 1e-13);
 }
 
-/// The SQL example in every function's documentation runs and returns one row.
+/// The SQL example in every function's documentation returns the value statsmodels or scipy
+/// give for it (extra_checks.json `documentation_examples`, written by scripts/make_fixtures.py).
 #[tokio::test]
-async fn every_documentation_example_runs() {
+async fn every_documentation_example_returns_its_reference_value() {
     let ctx = context(2);
-    let mut seen = 0;
+    let reference = load_json("extra_checks.json")["documentation_examples"].clone();
+    let mut docs: Vec<(String, Option<String>)> = Vec::new();
     for udf in ratesheet::sql::scalar_functions() {
         let doc = udf
             .documentation()
             .unwrap_or_else(|| panic!("{} has no documentation", udf.name()));
-        run_example(&ctx, udf.name(), doc.sql_example.as_deref()).await;
-        seen += 1;
+        docs.push((udf.name().to_string(), doc.sql_example.clone()));
     }
     for udaf in ratesheet::sql::aggregate_functions() {
         let doc = udaf
             .documentation()
             .unwrap_or_else(|| panic!("{} has no documentation", udaf.name()));
-        run_example(&ctx, udaf.name(), doc.sql_example.as_deref()).await;
-        seen += 1;
+        docs.push((udaf.name().to_string(), doc.sql_example.clone()));
     }
-    assert_eq!(seen, 9);
-}
-
-async fn run_example(ctx: &SessionContext, name: &str, sql: Option<&str>) {
-    let sql = sql.unwrap_or_else(|| panic!("{name} has no SQL example"));
-    let batches = ctx
-        .sql(sql)
-        .await
-        .unwrap_or_else(|e| panic!("{name} example does not plan: {e}\n{sql}"))
-        .collect()
-        .await
-        .unwrap_or_else(|e| panic!("{name} example fails: {e}\n{sql}"));
-    let rows: usize = batches.iter().map(RecordBatch::num_rows).sum();
-    assert_eq!(rows, 1, "{name} example");
-    let first = batches.iter().find(|b| b.num_rows() > 0).unwrap();
-    assert!(!first.column(0).is_null(0), "{name} example returned NULL:\n{sql}");
+    assert_eq!(docs.len(), 9);
+    for (name, sql) in docs {
+        let sql = sql.unwrap_or_else(|| panic!("{name} has no SQL example"));
+        let batches = collect(&ctx, &sql).await;
+        assert_eq!(
+            batches.iter().map(RecordBatch::num_rows).sum::<usize>(),
+            1,
+            "{name} example"
+        );
+        let column = batches.iter().find(|b| b.num_rows() > 0).unwrap().column(0).clone();
+        assert!(!column.is_null(0), "{name} example returned NULL:\n{sql}");
+        let got = column
+            .as_primitive::<datafusion::arrow::datatypes::Float64Type>()
+            .value(0);
+        let want = &reference[name.as_str()];
+        assert!(!want.is_null(), "{name}: no reference value in extra_checks.json");
+        close(
+            &format!("{name} documentation example"),
+            got,
+            f(&want["value"]),
+            1e-8,
+            1e-15,
+        );
+    }
 }
 
 /// Factor/integer Poisson designs are fitted from pattern sums; the same model with the integer
@@ -413,21 +489,35 @@ async fn pattern_sums_and_row_buffers_give_the_same_fits() {
         FitField::Dispersion,
         FitField::NullDeviance,
     ];
+    // The age band as a whole number 1..4: BIGINT routes to pattern sums, DOUBLE to rows.
+    let sql = |age_type: &str| {
+        format!(
+            "SELECT district, poisson_fit(claims, holders, car_group, CAST(age AS {age_type}), 'se=hc1') AS fit \
+             FROM (SELECT district, claims, holders, car_group, CASE age_band WHEN '<25' THEN 1 \
+             WHEN '25-29' THEN 2 WHEN '30-35' THEN 3 ELSE 4 END AS age FROM insurance) \
+             GROUP BY district ORDER BY district"
+        )
+    };
+    // Which buffer each query used, read from the partial aggregation's state (two partitions,
+    // and even this small CSV read in two ranges, so that the plan has a partial aggregation).
+    let probe = SessionContext::new_with_config(
+        SessionConfig::new()
+            .with_target_partitions(2)
+            .with_repartition_file_min_size(0),
+    );
+    ratesheet::register_functions(&probe).unwrap();
+    register_insurance(&probe).await;
+    assert_eq!(
+        partial_layouts(&probe, &sql("BIGINT")).await,
+        BTreeSet::from(["pattern sums"])
+    );
+    assert_eq!(partial_layouts(&probe, &sql("DOUBLE")).await, BTreeSet::from(["rows"]));
     for partitions in [1, 2, 8] {
         let ctx = context(partitions);
         register_insurance(&ctx).await;
         let run = |sql: String| {
             let ctx = ctx.clone();
             async move { fits(&collect(&ctx, &sql).await) }
-        };
-        // The age band as a whole number 1..4: BIGINT routes to pattern sums, DOUBLE to rows.
-        let sql = |age_type: &str| {
-            format!(
-                "SELECT district, poisson_fit(claims, holders, car_group, CAST(age AS {age_type}), 'se=hc1') AS fit \
-                 FROM (SELECT district, claims, holders, car_group, CASE age_band WHEN '<25' THEN 1 \
-                 WHEN '25-29' THEN 2 WHEN '30-35' THEN 3 ELSE 4 END AS age FROM insurance) \
-                 GROUP BY district ORDER BY district"
-            )
         };
         let patterns = run(sql("BIGINT")).await;
         let rows = run(sql("DOUBLE")).await;
