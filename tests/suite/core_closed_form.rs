@@ -1,7 +1,7 @@
 //! Closed-form rate inference against scipy (closed_form.json: scipy.stats.chi2.ppf for the
 //! Garwood limits, beta.ppf for the exact conditional limits; extra_checks.json:
-//! scipy.stats.binomtest for the exact p-values) and against published tables (PUBLISHED.md
-//! lists Breslow & Day 1987 vol. II limits, from memory, which the scipy values reproduce).
+//! scipy.stats.binomtest for the exact p-values). The Breslow & Day 1987 vol. II limits that
+//! reference/PUBLISHED.md lists are from memory, unverified, and not used as checks.
 
 use ratesheet::glm::closed_form::{rate_interval, rate_ratio_exact, rate_ratio_wald};
 

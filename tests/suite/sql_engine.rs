@@ -2,7 +2,7 @@
 //! partitioning, file splits, repartitioning and spilling, both accumulator paths agreeing,
 //! and every documentation example running.
 //!
-//! Check values: insurance.json (statsmodels 0.15.0 GLM, cross-checked with R glm) for the
+//! Check values: insurance.json (statsmodels 0.15.0 GLM) for the
 //! per-District and pooled fits; the other comparisons are between routes through the engine.
 
 use std::collections::BTreeSet;
