@@ -45,8 +45,9 @@ fn a_memory_limit_far_below_the_working_set_spills_or_names_the_limit() {
     );
 }
 
-/// Cancels the same query 200 times, at delays from 0 to 60 ms; after each cancel the session's
-/// memory pool must return to zero, and the session must still answer correctly at the end.
+/// Cancels the same query 200 times: 150 times once the aggregation holds memory (plus 0 to
+/// 60 ms), 50 times at once; after each cancel the session's memory pool must return to zero,
+/// and the session must still answer correctly at the end.
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn two_hundred_cancelled_queries_return_the_memory_pool_to_zero() {
     let ctx = new_session(&SessionSettings {
@@ -62,7 +63,20 @@ async fn two_hundred_cancelled_queries_return_the_memory_pool_to_zero() {
         let task_ctx = ctx.clone();
         let task =
             tokio::spawn(async move { collect_with_progress(&task_ctx, endless, false, &Hints::new(false)).await });
-        tokio::time::sleep(Duration::from_millis(cycle * 37 % 61)).await;
+        // Every fourth cycle cancels at once (before or while the statement starts); the others
+        // wait until the aggregation holds memory, then a further 0-60 ms.
+        if cycle % 4 != 0 {
+            let started = Instant::now();
+            while pool.reserved() == 0 {
+                assert!(!task.is_finished(), "cycle {cycle}: the query ended by itself");
+                assert!(
+                    started.elapsed() < Duration::from_secs(60),
+                    "cycle {cycle}: no memory reserved after 60 s"
+                );
+                tokio::time::sleep(Duration::from_millis(1)).await;
+            }
+            tokio::time::sleep(Duration::from_millis(cycle * 37 % 61)).await;
+        }
         if pool.reserved() > 0 {
             held_when_cancelled += 1;
         }
@@ -71,11 +85,11 @@ async fn two_hundred_cancelled_queries_return_the_memory_pool_to_zero() {
             task.await.is_err_and(|e| e.is_cancelled()),
             "cycle {cycle}: the query ended by itself"
         );
-        let deadline = Instant::now() + Duration::from_secs(5);
+        let deadline = Instant::now() + Duration::from_secs(30);
         while pool.reserved() > 0 {
             assert!(
                 Instant::now() < deadline,
-                "cycle {cycle}: {} bytes still reserved 5 s after the cancel",
+                "cycle {cycle}: {} bytes still reserved 30 s after the cancel",
                 pool.reserved()
             );
             tokio::time::sleep(Duration::from_millis(2)).await;
@@ -83,8 +97,8 @@ async fn two_hundred_cancelled_queries_return_the_memory_pool_to_zero() {
     }
     eprintln!("200 cancel cycles: memory held at the cancel in {held_when_cancelled}, all returned");
     assert!(
-        held_when_cancelled >= 100,
-        "only {held_when_cancelled} cycles were cancelled while holding memory"
+        held_when_cancelled >= 150,
+        "only {held_when_cancelled} of the 150 waiting cycles held memory when cancelled"
     );
     let batches = collect_with_progress(
         &ctx,

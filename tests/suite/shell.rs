@@ -10,7 +10,7 @@ fn shell(data_home: &std::path::Path) -> PtySession {
         .arg("demo-parquet/pipe_breaks.parquet")
         .env("XDG_DATA_HOME", data_home)
         .env("TERM", "xterm");
-    let mut p = spawn_command(c, Some(20_000)).unwrap();
+    let mut p = spawn_command(c, Some(60_000)).unwrap();
     p.exp_string("rates> ").unwrap();
     p
 }
@@ -65,7 +65,8 @@ fn ctrl_c_cancels_a_running_query_and_the_shell_goes_on() {
     let mut p = shell(&home);
     p.send_line("SELECT COUNT(*) FROM generate_series(1, 4000000000) AS a(x), generate_series(1, 10) AS b(y);")
         .unwrap();
-    std::thread::sleep(std::time::Duration::from_millis(700));
+    // Ctrl-C once the statement runs (its progress line shows), not after a fixed delay.
+    p.exp_regex(crate::support::PROGRESS_LINE).unwrap();
     p.send_control('c').unwrap();
     p.exp_string("cancelled").unwrap();
     p.exp_string("rates> ").unwrap();
@@ -167,7 +168,7 @@ fn long_statements_show_a_progress_line_that_is_erased() {
     )
     .unwrap();
     // The scans of a join report no total up front, so the line counts rows read.
-    p.exp_regex("(of [0-9.k]+ rows|[0-9.k]+ rows read)").unwrap();
+    p.exp_regex(crate::support::PROGRESS_LINE).unwrap();
     p.send_control('c').unwrap();
     let (shown, _) = p.exp_string("cancelled").map(|s| (s, ())).unwrap();
     assert!(

@@ -44,7 +44,7 @@ fn a_thousand_mixed_statements_in_one_shell() {
         .arg("demo-parquet/pipe_breaks.parquet")
         .env("XDG_DATA_HOME", &home)
         .env("TERM", "xterm");
-    let mut p = spawn_command(c, Some(30_000)).unwrap();
+    let mut p = spawn_command(c, Some(60_000)).unwrap();
     let pid = pid_with_env("XDG_DATA_HOME", &home);
     p.exp_string("rates> ").unwrap();
     for command in ["~format csv", "~timing off"] {
@@ -69,7 +69,8 @@ fn a_thousand_mixed_statements_in_one_shell() {
                     "SELECT COUNT(*) FROM generate_series(1, 4000000000) AS a(x), generate_series(1, 10) AS b(y);",
                 )
                 .unwrap();
-                std::thread::sleep(Duration::from_millis(150));
+                // Ctrl-C once the statement runs (its progress line shows).
+                p.exp_regex(crate::support::PROGRESS_LINE).unwrap();
                 p.send_control('c').unwrap();
                 p.exp_string("cancelled").unwrap();
                 cancelled += 1;

@@ -118,3 +118,10 @@ impl Seeded {
         (self.next() % n as u64) as usize
     }
 }
+
+/// A progress line (src/cli/progress.rs `progress_text`): "N rows read…", "all N rows read, …"
+/// or "reading N of M rows (P%)…"; shown once a statement has run for `QUIET_PERIOD`. Seeing it
+/// means the shell has read the statement and is running it, with its Ctrl-C handler in
+/// place: tests wait for it instead of sleeping a fixed time. The timing line "(N rows in X s)"
+/// and the echoed statements do not match it.
+pub const PROGRESS_LINE: &str = r"(rows read|of [0-9.]+[kMG]? rows \()";
