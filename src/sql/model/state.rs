@@ -124,7 +124,9 @@ pub fn encode(kind: FitKind, content: StateContent<'_>) -> Result<Vec<ArrayRef>>
     for values in content.predictors {
         out.push(list(&used, values));
     }
-    let mut values: Vec<Vec<f64>> = vec![Vec::with_capacity(content.sums.len()); Sums::NAMES.len()];
+    let mut values: Vec<Vec<f64>> = (0..Sums::NAMES.len())
+        .map(|_| Vec::with_capacity(content.sums.len()))
+        .collect();
     for s in &content.sums {
         for (column, v) in values.iter_mut().zip(s.to_array()) {
             column.push(v);
