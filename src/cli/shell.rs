@@ -266,11 +266,18 @@ impl Shell {
                     buffer.push('\n');
                     let split = split(&buffer);
                     if split.complete.is_empty() {
+                        if !split.is_pending() {
+                            // Only comments or space: nothing waits for a ';'.
+                            buffer.clear();
+                        }
                         continue;
                     }
                     let _ = editor.add_history_entry(buffer.trim());
                     for sql in &split.complete {
-                        self.execute(sql).await;
+                        // Ctrl-C cancels the rest of the line's statements too.
+                        if !self.execute(sql).await {
+                            break;
+                        }
                     }
                     buffer = if split.is_pending() { split.rest } else { String::new() };
                     self.refresh_completion().await;
@@ -289,8 +296,9 @@ impl Shell {
         Ok(())
     }
 
-    /// Runs one statement; Ctrl-C cancels it. Errors are printed, never fatal.
-    pub async fn execute(&mut self, sql: &str) {
+    /// Runs one statement; Ctrl-C cancels it. Errors are printed, never fatal. Returns false
+    /// when the statement was cancelled.
+    pub async fn execute(&mut self, sql: &str) -> bool {
         let start = Instant::now();
         let ctx = self.ctx.clone();
         let owned = sql.to_string();
@@ -304,7 +312,7 @@ impl Shell {
                 task.abort();
                 let _ = task.await;
                 eprintln!("cancelled");
-                return;
+                return false;
             }
         };
         match outcome {
@@ -331,6 +339,7 @@ impl Shell {
             Ok(Err(e)) => eprintln!("error: {e}"),
             Err(e) => eprintln!("error: the statement stopped: {e}"),
         }
+        true
     }
 
     /// Handles a shell command; returns false to leave the shell.

@@ -1,6 +1,7 @@
 //! The one statement splitter, used by the shell, `-e`, `--script` and the demo: statements end
-//! at `;` outside quotes ('text', "identifier") and outside `--` comments, which run to the end
-//! of their line. Comments are dropped; a statement holding nothing but space is no statement.
+//! at `;` outside quotes ('text', "identifier", E'text with \' escapes') and outside comments
+//! (`--` to the end of the line, `/* ... */`). Comments are dropped; a statement holding nothing
+//! but space is no statement.
 
 /// Text split into complete statements and what follows the last `;` (an unfinished statement,
 /// or nothing but space and comments).
@@ -21,21 +22,30 @@ impl Split {
 pub fn split(text: &str) -> Split {
     let mut complete = Vec::new();
     let mut current = String::new();
-    let mut quote: Option<char> = None;
+    // The open quote, and whether a backslash escapes the next character in it (E'...').
+    let mut quote: Option<(char, bool)> = None;
     let mut chars = text.chars().peekable();
     while let Some(c) = chars.next() {
-        match (quote, c) {
-            (Some(q), c) if c == q => {
+        if let Some((q, escapes)) = quote {
+            current.push(c);
+            if escapes && c == '\\' {
+                if let Some(next) = chars.next() {
+                    current.push(next);
+                }
+            } else if c == q {
                 quote = None;
+            }
+            continue;
+        }
+        match c {
+            '\'' | '"' => {
+                let escapes =
+                    c == '\'' && current.ends_with(['E', 'e']) && !ends_with_word(&current[..current.len() - 1]);
+                quote = Some((c, escapes));
                 current.push(c);
             }
-            (Some(_), c) => current.push(c),
-            (None, '\'' | '"') => {
-                quote = Some(c);
-                current.push(c);
-            }
-            (None, '-') if chars.peek() == Some(&'-') => {
-                // A comment: skip to the end of the line, keep the line break.
+            '-' if chars.peek() == Some(&'-') => {
+                // A line comment: skip to the end of the line, keep the line break.
                 for d in chars.by_ref() {
                     if d == '\n' {
                         current.push('\n');
@@ -43,19 +53,37 @@ pub fn split(text: &str) -> Split {
                     }
                 }
             }
-            (None, ';') => {
+            '/' if chars.peek() == Some(&'*') => {
+                // A block comment: skip to its end, keep a space in its place.
+                chars.next();
+                let mut last = ' ';
+                for d in chars.by_ref() {
+                    if last == '*' && d == '/' {
+                        break;
+                    }
+                    last = d;
+                }
+                current.push(' ');
+            }
+            ';' => {
                 if !current.trim().is_empty() {
                     complete.push(current.trim().to_string());
                 }
                 current.clear();
             }
-            (None, c) => current.push(c),
+            c => current.push(c),
         }
     }
     Split {
         complete,
         rest: current,
     }
+}
+
+/// Whether `text` ends with a word character (so that a trailing `E` belongs to a word, as in
+/// `WHERE'`... rather than being the `E` of `E'...'`).
+fn ends_with_word(text: &str) -> bool {
+    text.chars().last().is_some_and(|c| c.is_alphanumeric() || c == '_')
 }
 
 /// Every statement of a script, the last one also without its `;`.
@@ -88,5 +116,14 @@ mod tests {
         let s = split("SELECT 1; -- done\n");
         assert!(!s.is_pending());
         assert!(split("SELECT 'it''s;'; ").complete == vec!["SELECT 'it''s;'"]);
+    }
+
+    #[test]
+    fn block_comments_and_escaped_quotes() {
+        assert_eq!(
+            statements("SELECT 1 /* it's; */ AS a; SELECT E'it\\'s;' AS b; SELECT 'E' AS c"),
+            vec!["SELECT 1   AS a", "SELECT E'it\\'s;' AS b", "SELECT 'E' AS c"]
+        );
+        assert!(!split("/* only a comment */\n").is_pending());
     }
 }

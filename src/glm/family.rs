@@ -14,6 +14,9 @@ use super::overdispersion::{ScoreTest, cameron_trivedi};
 /// Statistics a family adds to its fits (all `None` for families without them).
 #[derive(Debug, Clone, Copy, PartialEq, Default)]
 pub struct FamilyTests {
+    /// Negative binomial: the likelihood-ratio test of alpha = 0 (Poisson) on the same rows,
+    /// 2 (loglik_NB - loglik_Poisson), with the boundary p-value 0.5 P(chi²_1 >= t) (1 at t = 0).
+    pub poisson_lr: Option<ScoreTest>,
     /// Poisson: Cameron & Trivedi (1990) auxiliary-regression test of Var(y) = mu against
     /// Var(y) = mu + alpha·mu², the t statistic of alpha and its one-sided p-value (alpha > 0).
     pub overdispersion: Option<ScoreTest>,
@@ -24,16 +27,18 @@ pub struct FamilyTests {
 pub enum FamilyKind {
     Poisson,
     Gaussian,
+    NegativeBinomial,
 }
 
 impl FamilyKind {
-    pub const ALL: [FamilyKind; 2] = [FamilyKind::Poisson, FamilyKind::Gaussian];
+    pub const ALL: [FamilyKind; 3] = [FamilyKind::Poisson, FamilyKind::Gaussian, FamilyKind::NegativeBinomial];
 
     /// The name reported in the `family` field.
     pub fn name(self) -> &'static str {
         match self {
             FamilyKind::Poisson => "poisson",
             FamilyKind::Gaussian => "gaussian",
+            FamilyKind::NegativeBinomial => "negative binomial",
         }
     }
 
@@ -46,6 +51,7 @@ impl FamilyKind {
         match self {
             FamilyKind::Poisson => &Poisson,
             FamilyKind::Gaussian => &Gaussian,
+            FamilyKind::NegativeBinomial => &super::negbin::NB_PROPERTIES,
         }
     }
 }
@@ -163,6 +169,7 @@ impl Family for Poisson {
     fn extra_tests(&self, y: &[f64], mu: &[f64], weights: Option<&[f64]>, rows: usize) -> FamilyTests {
         FamilyTests {
             overdispersion: weights.is_none().then(|| cameron_trivedi(y, mu, rows)).flatten(),
+            ..FamilyTests::default()
         }
     }
     fn check_response(&self, y: f64) -> Option<&'static str> {

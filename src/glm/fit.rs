@@ -120,6 +120,9 @@ pub struct FitStats {
     pub df_resid: Option<usize>,
     pub deviance: Option<f64>,
     pub null_deviance: Option<f64>,
+    /// Log-likelihood of the null model (intercept and offset only; for a family with its own
+    /// parameter, with that parameter re-estimated).
+    pub null_loglik: Option<f64>,
     pub pearson_chi2: Option<f64>,
     pub loglik: Option<f64>,
     pub aic: Option<f64>,
@@ -228,12 +231,15 @@ pub fn fit<F: Family>(family: &F, design: &Design, input: FitInput<'_>, opts: Fi
 }
 
 /// A fit with estimates and 0 residual degrees of freedom is saturated: the tests that need
-/// residual variation (dispersion, goodness of fit, overdispersion) do not exist, and the
+/// residual variation (dispersion, goodness of fit, overdispersion, a family parameter) do not
+/// exist, and the
 /// status says so. Called once the final df_resid is known (for pattern fits, that of the rows).
 pub(crate) fn note_saturation(fit: &mut GlmFit) {
     let estimated = fit.states.contains(&TermState::Estimated);
     if estimated && fit.stats.df_resid == Some(0) && !fit.issues.contains(&FitIssue::Saturated) {
         fit.stats.extra = FamilyTests::default();
+        // A family parameter (a negative binomial alpha) has no rows left to be estimated from.
+        fit.parameter = None;
         fit.issues.push(FitIssue::Saturated);
     }
 }
@@ -302,6 +308,7 @@ pub(crate) fn fit_with_row_count<F: Family>(
     let mut null_mu = vec![0.0; n];
     family.null_fitted(y, offset, w, design.has_intercept(), &mut null_mu);
     stats.null_deviance = Some(weighted_deviance(family, y, &null_mu, w));
+    stats.null_loglik = Some(family.log_likelihood(y, &null_mu, w)).filter(|l| l.is_finite());
 
     if let Some(fit) = boundary_refit(family, design, input, opts, &aliased, &run, &null_mu, &stats)? {
         return Ok(fit);

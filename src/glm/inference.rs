@@ -183,7 +183,14 @@ pub fn model_test(fit: &GlmFit) -> Option<ModelTest> {
     }
     let df1 = df1 as f64;
     if !fit.scale.uses_t() {
-        let stat = (null - dev).max(0.0);
+        // With the family's own parameter re-estimated in the null model the deviances are at
+        // different parameters: the test is 2 (loglik - null loglik).
+        let stat = if fit.scale == Scale::OwnParameter {
+            2.0 * (fit.stats.loglik? - fit.stats.null_loglik?)
+        } else {
+            null - dev
+        }
+        .max(0.0);
         Some(ModelTest {
             statistic: stat,
             df: df1,

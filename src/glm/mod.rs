@@ -22,6 +22,7 @@ pub mod family;
 mod fit;
 pub mod inference;
 mod irls;
+pub mod negbin;
 mod overdispersion;
 mod solve;
 
@@ -36,4 +37,5 @@ pub use fit::{
 };
 pub use inference::{ModelTest, SeType, TermRow, model_test, term_table};
 pub use irls::FitOptions;
+pub use negbin::{NegativeBinomial, fit_negative_binomial};
 pub use overdispersion::ScoreTest;

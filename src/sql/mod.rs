@@ -24,6 +24,8 @@ pub fn aggregate_functions() -> Vec<AggregateUDF> {
         functions::poisson_fit::poisson_fit(),
         functions::poisson_count_fit::poisson_count_fit(),
         functions::linear_fit::linear_fit(),
+        functions::negbin_fit::negbin_fit(),
+        functions::negbin_count_fit::negbin_count_fit(),
     ]
 }
 
@@ -54,6 +56,14 @@ pub fn register_functions_on_state(state: &mut SessionState) -> Result<()> {
         *state = SessionStateBuilder::new_from_existing(state.clone())
             .with_optimizer_rules(rules)
             .build();
+    }
+    let analyzed = state
+        .analyzer()
+        .rules
+        .iter()
+        .any(|r| r.name() == unnest_keys::IMPLICIT_KEYS_NAME);
+    if !analyzed {
+        state.add_analyzer_rule(std::sync::Arc::new(unnest_keys::ImplicitGroupKeys));
     }
     for f in aggregate_functions() {
         state.register_udaf(f.into())?;

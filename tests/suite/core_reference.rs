@@ -752,3 +752,102 @@ fn the_r_printout_of_the_insurance_model_is_reproduced() {
     close_opt("aic", fit.stats.aic, 388.74, 0.0, 0.005);
     assert_eq!(fit.stats.df_resid, Some(54));
 }
+
+/// NB2 on AER::DoctorVisits against statsmodels 0.15.0 `NegativeBinomial(loglike_method='nb2')`
+/// (extra_checks.json `negative_binomial.doctorvisits_cameron_trivedi`): estimates and
+/// log-likelihood to 1e-7, standard errors (joint observed information, and the HC0 sandwich
+/// from the joint scores) and alpha's to 1e-6.
+#[test]
+fn negative_binomial_fits_match_statsmodels() {
+    let want = load_json("extra_checks.json")["negative_binomial"]["doctorvisits_cameron_trivedi"].clone();
+    let expected = load_json("reference/expected/doctorvisits.json");
+    let table = Table::load("reference/data/doctorvisits.csv");
+    let columns = expected["models"][0]["terms"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|t| term_column(&table, t))
+        .collect();
+    let design = Design::from_columns(table.rows, columns).unwrap();
+    let y = table.num("visits");
+    let input = FitInput {
+        y: &y,
+        offset: None,
+        weights: None,
+    };
+    let fit = ratesheet::glm::fit_negative_binomial(&design, input, FitOptions::default()).unwrap();
+    assert_eq!(fit.status(), "ok");
+    let alpha = fit.parameter.unwrap();
+    close("alpha", alpha.estimate, f(&want["alpha"]), 1e-6, 0.0);
+    close_opt("alpha se", alpha.std_error, f(&want["alpha_std_error"]), 1e-6, 0.0);
+    close_opt("loglik", fit.stats.loglik, f(&want["llf"]), 1e-7, 0.0);
+    close_opt("aic", fit.stats.aic, f(&want["aic"]), 1e-7, 0.0);
+    close_opt("bic", fit.stats.bic, f(&want["bic"]), 1e-7, 0.0);
+    close_opt("null loglik", fit.stats.null_loglik, f(&want["llnull"]), 1e-7, 0.0);
+    close_opt(
+        "poisson LR",
+        fit.stats.extra.poisson_lr.map(|t| t.statistic),
+        f(&want["poisson_lr_statistic"]),
+        1e-6,
+        0.0,
+    );
+    let model = term_table(&fit, SeType::Model, 0.95).unwrap();
+    let hc0 = term_table(&fit, SeType::Hc0, 0.95).unwrap();
+    for (j, name) in want["terms"].as_array().unwrap().iter().enumerate() {
+        let name = name.as_str().unwrap();
+        close_opt(name, model[j].estimate, f(&want["estimate"][j]), 1e-7, 1e-12);
+        close_opt(
+            &format!("{name} se"),
+            model[j].std_error,
+            f(&want["se_model"][j]),
+            1e-6,
+            0.0,
+        );
+        close_opt(
+            &format!("{name} hc0"),
+            hc0[j].std_error,
+            f(&want["se_hc0"][j]),
+            1e-6,
+            0.0,
+        );
+    }
+}
+
+/// Identity: on counts simulated from a Poisson model (seeded) the NB2 maximum sits at or near
+/// alpha = 0 and the NB coefficients equal the Poisson ones.
+#[test]
+fn negative_binomial_on_poisson_data_reduces_to_poisson() {
+    use rand::SeedableRng;
+    use rand_distr::Distribution;
+    let mut rng = rand::rngs::StdRng::seed_from_u64(7);
+    let n = 400;
+    let x: Vec<f64> = (0..n).map(|i| (i % 10) as f64 / 10.0).collect();
+    let y: Vec<f64> = x
+        .iter()
+        .map(|&v| {
+            rand_distr::Poisson::new((1.0 + 0.8 * v).exp())
+                .unwrap()
+                .sample(&mut rng)
+        })
+        .collect();
+    let design = Design::from_columns(
+        n,
+        vec![
+            ("intercept".into(), ColumnKind::Intercept, vec![1.0; n]),
+            ("x".into(), ColumnKind::Numeric, x),
+        ],
+    )
+    .unwrap();
+    let input = FitInput {
+        y: &y,
+        offset: None,
+        weights: None,
+    };
+    let nb = ratesheet::glm::fit_negative_binomial(&design, input, FitOptions::default()).unwrap();
+    let poisson = fit(&Poisson, &design, input, FitOptions::default()).unwrap();
+    let alpha = nb.parameter.unwrap().estimate;
+    assert!(alpha < 0.02, "alpha {alpha} on Poisson data");
+    for j in 0..2 {
+        close("coefficient", nb.estimates[j], poisson.estimates[j], 2e-2, 1e-3);
+    }
+}

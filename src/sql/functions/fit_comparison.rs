@@ -11,8 +11,8 @@ use datafusion::logical_expr::{
 use statrs::distribution::{ContinuousCDF, FisherSnedecor};
 
 use super::args::{arg_arrays, exec_error};
-use crate::glm::SeType;
 use crate::glm::distributions::chi2_sf;
+use crate::glm::{FamilyKind, SeType};
 use crate::sql::model::aggregate::DOC_SECTION;
 use crate::sql::model::fields::Range;
 use crate::sql::model::fields::{FitField, FitReader, TermField};
@@ -133,9 +133,13 @@ fn compare(big: &FitReader<'_>, small: &FitReader<'_>, r: usize) -> Result<Optio
     if big.family(r) != small.family(r) {
         return Err(exec_error("fit_lr_test: the two fits are of different families".into()));
     }
+    // Least-squares fits have no totals; their null deviance (the response's sum of squares
+    // about its mean) tells the same rows and response apart instead.
+    let gaussian = big.family(r) == Some(FamilyKind::Gaussian);
     if big.uint(FitField::NUsed, r) != small.uint(FitField::NUsed, r)
         || !same(FitField::TotalCount)
         || !same(FitField::TotalExposure)
+        || (gaussian && !same(FitField::NullDeviance))
     {
         return Err(exec_error(format!(
             "fit_lr_test: the fits used different rows (n_used {:?} vs {:?}); compare fits of the same rows",
@@ -153,11 +157,16 @@ fn compare(big: &FitReader<'_>, small: &FitReader<'_>, r: usize) -> Result<Optio
     ) else {
         return Ok(None);
     };
-    if rb <= rs {
+    if rb < rs {
         return Err(exec_error(format!(
             "fit_lr_test: the first fit must have more estimated coefficients than the second ({rb} vs {rs}); \
              give the bigger fit first"
         )));
+    }
+    if rb == rs {
+        // Nothing to test in this group (a factor with one level here, no events): NULL, so that
+        // one such group does not stop a per-group query.
+        return Ok(None);
     }
     if ds < db - 1e-9 * db.abs().max(1.0) {
         return Err(exec_error(format!(
@@ -175,7 +184,10 @@ fn compare(big: &FitReader<'_>, small: &FitReader<'_>, r: usize) -> Result<Optio
         .all(|t| big_terms.contains(&t));
     let nesting = if nested { "terms" } else { "assumed" };
     let df = (rb - rs) as f64;
-    if big.text(FitField::SeType, r) == Some(SeType::Quasi.name()) {
+    // Families with an estimated scale (least squares), and fits with quasi standard errors,
+    // compare by F on the bigger fit's dispersion, as their own model test does.
+    let estimated_scale = big.family(r).is_some_and(|f| f.family().scale().uses_t());
+    if estimated_scale || big.text(FitField::SeType, r) == Some(SeType::Quasi.name()) {
         let (Some(dispersion), Some(df_resid)) = (big.float(FitField::Dispersion, r), big.uint(FitField::DfResid, r))
         else {
             return Ok(None);
@@ -213,8 +225,9 @@ static DOC: LazyLock<Documentation> = LazyLock::new(|| {
         "Compares a bigger fit with a smaller one that is a special case of it, both fitted to the same rows. \
          Returns {chi2, f, df, df_denominator, p_value, method, nesting}. method 'lr': chi2 = 2 (loglik_bigger - \
          loglik_smaller) (the deviance difference for Poisson fits) on df = the difference in estimated \
-         coefficients. method 'f' (when the bigger fit has se=quasi): f = (deviance_smaller - deviance_bigger) / \
-         (df * dispersion_bigger) on (df, df_denominator = df_resid of the bigger fit). nesting is 'terms' when every term of \
+         coefficients. method 'f' (least-squares fits, and fits whose bigger fit has se=quasi): f = \
+         (deviance_smaller - deviance_bigger) / (df * dispersion_bigger) on (df, df_denominator = df_resid of the \
+         bigger fit). NULL when the two fits have as many estimated coefficients (nothing to test in that group). nesting is 'terms' when every term of \
          the smaller fit is in the bigger one, and 'assumed' otherwise (a linear trend against its factor, \
          merged levels): the test is then only valid if the smaller model really is a special case. Refuses \
          fits of other families or other rows, and a second fit with as many coefficients or a smaller deviance.",

@@ -8,6 +8,8 @@ pub mod fit_expected;
 pub mod fit_term;
 pub mod interaction;
 pub mod linear_fit;
+pub mod negbin_count_fit;
+pub mod negbin_fit;
 pub mod poisson_count_fit;
 pub mod poisson_fit;
 pub mod rate_comparison;

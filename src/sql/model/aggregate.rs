@@ -209,9 +209,11 @@ impl<B: GroupBuffer> Accumulator for SingleGroup<B> {
         self.0.update_batch(values, &vec![0; n], None, 1)
     }
 
+    /// Fits the one group without consuming it (DataFusion may call `evaluate` repeatedly, as
+    /// window frames grow).
     fn evaluate(&mut self) -> Result<ScalarValue> {
         self.0.buffer.common_mut().counts.ensure(1);
-        let array = self.0.evaluate(EmitTo::All)?;
+        let array = evaluate_groups(&self.0.buffer)?;
         ScalarValue::try_from_array(&array, 0)
     }
 
@@ -221,7 +223,7 @@ impl<B: GroupBuffer> Accumulator for SingleGroup<B> {
 
     fn state(&mut self) -> Result<Vec<ScalarValue>> {
         self.0.buffer.common_mut().counts.ensure(1);
-        let arrays = self.0.state(EmitTo::All)?;
+        let arrays = self.0.buffer.to_state()?;
         arrays.iter().map(|a| ScalarValue::try_from_array(a, 0)).collect()
     }
 

@@ -11,6 +11,7 @@ use super::group_buffer::{Column, GroupBuffer, GroupData, Response};
 use super::spec::BufferKind;
 use crate::glm::collapse::fit_poisson_patterns;
 use crate::glm::design::full_coded_factor;
+use crate::glm::fit_negative_binomial;
 use crate::glm::{
     Design, DesignSpec, FactorColumn, FamilyKind, FitInput, Gaussian, GlmFit, Poisson, Predictor, PredictorValues, fit,
     term_table,
@@ -210,6 +211,7 @@ fn fit_design(data: &GroupData<'_>, design: &Design) -> std::result::Result<GlmF
             match spec.family() {
                 FamilyKind::Poisson => fit(&Poisson, design, input, options),
                 FamilyKind::Gaussian => fit(&Gaussian, design, input, options),
+                FamilyKind::NegativeBinomial => fit_negative_binomial(design, input, options),
             }
         }
     }

@@ -22,8 +22,9 @@ use datafusion::error::{DataFusionError, Result};
 
 use super::spec::PredictorKind;
 use crate::glm::design::{ColumnSource, SourcePart};
+use crate::glm::distributions::normal_quantile;
 use crate::glm::inference::{ModelTest, gof_p_value, model_test};
-use crate::glm::{FamilyKind, FitStats, GlmFit, TermRow};
+use crate::glm::{FamilyKind, FamilyParameter, FitStats, GlmFit, TermRow};
 
 /// The values a reported number can take. A statistic whose formula cannot leave its range
 /// (a deviance is a sum of non-negative terms, a p-value a probability) is brought back into
@@ -171,6 +172,23 @@ impl GroupReport<'_> {
         gof_p_value(statistic(&fit.stats), fit.stats.df_resid)
     }
 
+    /// The negative binomial alpha (NULL for other families).
+    fn alpha(&self) -> Option<FamilyParameter> {
+        self.fit.and_then(|f| f.parameter)
+    }
+
+    /// Wald interval of alpha on the log scale, exp(ln a ± z·se/a), so it stays positive.
+    fn alpha_interval(&self) -> Option<(f64, f64)> {
+        let a = self.alpha()?;
+        let se = a.std_error?;
+        if !(a.estimate > 0.0) {
+            return None;
+        }
+        let z = normal_quantile(0.5 + self.level / 2.0);
+        let half = z * se / a.estimate;
+        Some((a.estimate * (-half).exp(), a.estimate * half.exp()))
+    }
+
     fn crude_rate(&self) -> Option<f64> {
         match (self.total_count, self.total_exposure) {
             (Some(c), Some(e)) if e > 0.0 => Some(c / e),
@@ -215,6 +233,12 @@ record_table! {
         CrudeRate: "crude_rate", Float, NonNegative, |r| r.crude_rate();
         SeType: "se_type", Text, Any, |r| Some(r.se_type.to_string());
         Level: "level", Float, Probability, |r| Some(r.level);
+        Alpha: "alpha", Float, NonNegative, |r| r.alpha().map(|a| a.estimate);
+        AlphaStdError: "alpha_std_error", Float, NonNegative, |r| r.alpha().and_then(|a| a.std_error);
+        AlphaCiLow: "alpha_ci_low", Float, NonNegative, |r| r.alpha_interval().map(|i| i.0);
+        AlphaCiHigh: "alpha_ci_high", Float, NonNegative, |r| r.alpha_interval().map(|i| i.1);
+        PoissonLrChi2: "poisson_lr_chi2", Float, NonNegative, |r| r.stats().and_then(|s| s.extra.poisson_lr).map(|t| t.statistic);
+        PoissonLrP: "poisson_lr_p", Float, Probability, |r| r.stats().and_then(|s| s.extra.poisson_lr).map(|t| t.p_value);
     }
 }
 

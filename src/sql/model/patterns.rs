@@ -168,6 +168,10 @@ impl GroupBuffer for GroupPatterns {
             tuple_of(&columns, j, &mut tuple);
             let t = self.tuple(&tuple);
             let s = self.slot(g, t);
+            // Row counts beyond 2^53 cannot come from real data (and would overflow).
+            if self.sums[s].rows().checked_add(part.rows()).is_none_or(|n| n > 1 << 53) {
+                return Err(state_error("a pattern's row count is impossibly large".into()));
+            }
             self.sums[s].merge(part);
         }
         Ok(())

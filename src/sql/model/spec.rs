@@ -35,6 +35,10 @@ pub enum FitKind {
     PoissonCount,
     /// `linear_fit(y, predictors...)`
     Linear,
+    /// `negbin_fit(count, exposure, predictors...)`
+    NegBinRate,
+    /// `negbin_count_fit(count, predictors...)`
+    NegBinCount,
 }
 
 impl FitKind {
@@ -43,6 +47,8 @@ impl FitKind {
             FitKind::PoissonRate => "poisson_fit",
             FitKind::PoissonCount => "poisson_count_fit",
             FitKind::Linear => "linear_fit",
+            FitKind::NegBinRate => "negbin_fit",
+            FitKind::NegBinCount => "negbin_count_fit",
         }
     }
 
@@ -54,8 +60,8 @@ impl FitKind {
     /// Names of the leading arguments, for messages.
     pub fn leading_names(self) -> &'static [&'static str] {
         match self {
-            FitKind::PoissonRate => &["count", "exposure"],
-            FitKind::PoissonCount => &["count"],
+            FitKind::PoissonRate | FitKind::NegBinRate => &["count", "exposure"],
+            FitKind::PoissonCount | FitKind::NegBinCount => &["count"],
             FitKind::Linear => &["response"],
         }
     }
@@ -64,17 +70,18 @@ impl FitKind {
         match self {
             FitKind::PoissonRate | FitKind::PoissonCount => FamilyKind::Poisson,
             FitKind::Linear => FamilyKind::Gaussian,
+            FitKind::NegBinRate | FitKind::NegBinCount => FamilyKind::NegativeBinomial,
         }
     }
 
     /// Whether the second argument is an exposure (its log is the offset).
     pub fn has_exposure(self) -> bool {
-        self == FitKind::PoissonRate
+        matches!(self, FitKind::PoissonRate | FitKind::NegBinRate)
     }
 
     /// Whether the response must be a count (>= 0).
     pub fn counts(self) -> bool {
-        self.family() == FamilyKind::Poisson
+        self.family() != FamilyKind::Gaussian
     }
 }
 
@@ -255,6 +262,7 @@ pub fn resolve_call(kind: FitKind, mut call: AggregateFunction, info: &SimplifyC
         }
     }
     check_references(function, &settings, &predictors)?;
+    check_family_settings(kind, &settings)?;
     let ratio_scale = ratio_scale(kind, &settings, || args.first().is_some_and(is_natural_log))?;
     let spec = ModelSpec {
         settings,
@@ -292,6 +300,19 @@ pub fn check_references(function: &str, settings: &FitSettings, predictors: &[Pr
     Ok(())
 }
 
+/// Settings a family cannot use: quasi standard errors for a family whose own parameter already
+/// models the extra variance.
+fn check_family_settings(kind: FitKind, settings: &FitSettings) -> Result<()> {
+    if kind.family() == FamilyKind::NegativeBinomial && settings.se_type() == crate::glm::SeType::Quasi {
+        return Err(plan_error(format!(
+            "{}: se=quasi is not available for negative binomial fits (alpha already models the extra \
+             variance); use se=model, hc0 or hc1",
+            kind.sql_name()
+        )));
+    }
+    Ok(())
+}
+
 /// Whether a fit's exp(coefficient) is a ratio (see [`ModelSpec::ratio_scale`]); `log_response`
 /// tells whether the response expression is `ln(...)`.
 fn ratio_scale(kind: FitKind, settings: &FitSettings, log_response: impl FnOnce() -> bool) -> Result<bool> {
@@ -307,11 +328,18 @@ fn ratio_scale(kind: FitKind, settings: &FitSettings, log_response: impl FnOnce(
     }
 }
 
-/// `ln(...)` of an expression, under any casts the planner inserted.
+/// A natural logarithm: `ln(...)` of an expression, or a sum or difference of such terms and
+/// constants (`ln(cases) - ln(pop)` is the log of a rate), under any casts the planner inserted.
 fn is_natural_log(e: &Expr) -> bool {
+    use datafusion::logical_expr::{BinaryExpr, Operator};
     match strip_casts(e) {
         Expr::ScalarFunction(f) => f.func.name() == "ln",
         Expr::Alias(a) => is_natural_log(&a.expr),
+        Expr::BinaryExpr(BinaryExpr { left, op, right }) if matches!(op, Operator::Plus | Operator::Minus) => {
+            let constant = |x: &Expr| matches!(strip_casts(x), Expr::Literal(..));
+            (is_natural_log(left) && (is_natural_log(right) || constant(right)))
+                || (constant(left) && is_natural_log(right))
+        }
         _ => false,
     }
 }
@@ -428,6 +456,7 @@ pub fn spec_at_execution(
         predictors.push(PredictorSpec { name, kind });
     }
     check_references(function, &settings, &predictors)?;
+    check_family_settings(kind, &settings)?;
     let ratio_scale = ratio_scale(kind, &settings, || {
         use datafusion::physical_expr::ScalarFunctionExpr;
         let Some(mut e) = exprs.first() else { return false };
