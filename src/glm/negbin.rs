@@ -23,7 +23,7 @@ use super::distributions::chi2_sf;
 use super::error::FitError;
 use super::family::{Family, FamilyKind, FamilyTests, Poisson, Scale, crude_rate, log_factorial, xlogy_ratio};
 use super::fit::{FamilyParameter, FitInput, FitIssue, GlmFit, TermState, fit_with_row_count, note_saturation};
-use super::irls::{FitOptions, Standardised};
+use super::irls::{FitOptions, Standardised, irls};
 use super::overdispersion::ScoreTest;
 
 /// NB2 with a fixed alpha (> 0), for the coefficient steps; `warm` holds the previous fitted
@@ -111,25 +111,36 @@ impl Family for NegativeBinomial<'_> {
         (2.0 * (xlogy_ratio(y, mu) - (y + theta) * ((y + theta) / (mu + theta)).ln())).max(0.0)
     }
     fn log_likelihood(&self, y: &[f64], mu: &[f64], w: &[f64]) -> f64 {
+        let sums = GammaSums::new(1.0 / self.alpha, y);
         y.iter()
             .zip(mu)
             .zip(w)
-            .map(|((&y, &m), &w)| w * row_loglik(y, m, self.alpha))
+            .map(|((&y, &m), &w)| w * row_loglik_with(y, m, self.alpha, &sums))
             .sum()
+    }
+    /// Σ w·[y ln y - (y + θ) ln(y + θ)], the part of the deviance that does not move.
+    fn deviance_constant(&self, y: &[f64], w: &[f64]) -> f64 {
+        let theta = 1.0 / self.alpha;
+        y.iter()
+            .zip(w)
+            .map(|(&y, &w)| w * (super::family::xlogy(y, y) - (y + theta) * (y + theta).ln()))
+            .sum()
+    }
+    /// With ln mu = eta: D = 2·(constant + Σ w·[(y + θ) ln(mu + θ) - y·eta]), one logarithm per
+    /// row instead of two.
+    fn step_deviance(&self, y: &[f64], eta: &[f64], mu: &[f64], w: &[f64], constant: f64) -> f64 {
+        let theta = 1.0 / self.alpha;
+        let mut sum = 0.0;
+        let mut lost = false;
+        for i in 0..y.len() {
+            sum += w[i] * ((y[i] + theta) * (mu[i] + theta).ln() - y[i] * eta[i]);
+            lost |= mu[i] == 0.0 && y[i] > 0.0;
+        }
+        if lost { f64::INFINITY } else { 2.0 * (constant + sum) }
     }
     fn has_boundary(&self) -> bool {
         true
     }
-}
-
-/// One row's NB2 log-likelihood (the Poisson one at alpha = 0).
-fn row_loglik(y: f64, mu: f64, alpha: f64) -> f64 {
-    if alpha == 0.0 {
-        return super::family::xlogy(y, mu) - mu - log_factorial(y);
-    }
-    let theta = 1.0 / alpha;
-    let log_terms = if y == 0.0 { 0.0 } else { y * (mu / (theta + mu)).ln() };
-    ln_gamma_ratio(theta, y) - log_factorial(y) - theta * (alpha * mu).ln_1p() + log_terms
 }
 
 /// lnΓ(θ + y) - lnΓ(θ): a sum of logarithms for small whole y (no cancellation when θ is
@@ -160,6 +171,67 @@ fn trigamma_difference(theta: f64, y: f64) -> f64 {
     }
 }
 
+/// ψ(θ + y) - ψ(θ), ψ'(θ + y) - ψ'(θ) and lnΓ(θ + y) - lnΓ(θ) for the whole counts 0..=max at
+/// one θ, as running sums (built in O(max) once per alpha, so that a row costs a lookup).
+struct GammaSums {
+    theta: f64,
+    digamma: Vec<f64>,
+    trigamma: Vec<f64>,
+    ln_gamma: Vec<f64>,
+}
+
+impl GammaSums {
+    /// Counts above this are left to the special functions.
+    const MAX: usize = 4096;
+
+    fn new(theta: f64, y: &[f64]) -> Self {
+        let max = y
+            .iter()
+            .filter(|v| v.fract() == 0.0 && **v >= 0.0 && **v <= Self::MAX as f64)
+            .fold(0.0f64, |m, &v| m.max(v)) as usize;
+        let (mut digamma, mut trigamma, mut ln_gamma) = (
+            Vec::with_capacity(max + 1),
+            Vec::with_capacity(max + 1),
+            Vec::with_capacity(max + 1),
+        );
+        let (mut d, mut t, mut l) = (0.0, 0.0, 0.0);
+        for k in 0..=max {
+            digamma.push(d);
+            trigamma.push(t);
+            ln_gamma.push(l);
+            let x = theta + k as f64;
+            d += 1.0 / x;
+            t -= 1.0 / (x * x);
+            l += x.ln();
+        }
+        GammaSums {
+            theta,
+            digamma,
+            trigamma,
+            ln_gamma,
+        }
+    }
+
+    fn index(&self, y: f64) -> Option<usize> {
+        (y >= 0.0 && y.fract() == 0.0 && y < self.digamma.len() as f64).then_some(y as usize)
+    }
+
+    fn digamma_difference(&self, y: f64) -> f64 {
+        self.index(y)
+            .map_or_else(|| digamma_difference(self.theta, y), |k| self.digamma[k])
+    }
+
+    fn trigamma_difference(&self, y: f64) -> f64 {
+        self.index(y)
+            .map_or_else(|| trigamma_difference(self.theta, y), |k| self.trigamma[k])
+    }
+
+    fn ln_gamma_ratio(&self, y: f64) -> f64 {
+        self.index(y)
+            .map_or_else(|| ln_gamma_ratio(self.theta, y), |k| self.ln_gamma[k])
+    }
+}
+
 /// The trigamma function ψ'(x) for x > 0: the recurrence ψ'(x) = ψ'(x + 1) + 1/x² up to
 /// x >= 12, then the asymptotic series 1/x + 1/(2x²) + Σ B_2k / x^(2k+1) to B_14 (Abramowitz &
 /// Stegun 6.4.12), whose first omitted term there is below 1e-17 relative. statrs has the
@@ -178,13 +250,21 @@ pub fn trigamma(mut x: f64) -> f64 {
     sum + 1.0 / x + 0.5 * z + series * z / x
 }
 
-/// First and second derivatives of one row's log-likelihood with respect to alpha.
-fn alpha_derivatives(y: f64, mu: f64, alpha: f64) -> (f64, f64) {
+/// First and second derivatives of one row's log-likelihood with respect to alpha (`sums` at
+/// θ = 1/alpha).
+fn alpha_derivatives(y: f64, mu: f64, alpha: f64, sums: &GammaSums) -> (f64, f64) {
     let theta = 1.0 / alpha;
     // dl/dθ and d²l/dθ², then the chain rule with dθ/dα = -θ².
-    let d1 = digamma_difference(theta, y) - (alpha * mu).ln_1p() + (mu - y) / (theta + mu);
-    let d2 = trigamma_difference(theta, y) + 1.0 / theta - 1.0 / (theta + mu) - (mu - y) / (theta + mu).powi(2);
+    let d1 = sums.digamma_difference(y) - (alpha * mu).ln_1p() + (mu - y) / (theta + mu);
+    let d2 = sums.trigamma_difference(y) + 1.0 / theta - 1.0 / (theta + mu) - (mu - y) / (theta + mu).powi(2);
     (-theta * theta * d1, 2.0 * theta.powi(3) * d1 + theta.powi(4) * d2)
+}
+
+/// One row's NB2 log-likelihood with the gamma sums at hand.
+fn row_loglik_with(y: f64, mu: f64, alpha: f64, sums: &GammaSums) -> f64 {
+    let theta = 1.0 / alpha;
+    let log_terms = if y == 0.0 { 0.0 } else { y * (mu / (theta + mu)).ln() };
+    sums.ln_gamma_ratio(y) - log_factorial(y) - theta * (alpha * mu).ln_1p() + log_terms
 }
 
 /// The alpha that maximises the likelihood at fixed means: Newton steps on t = ln(alpha) for
@@ -192,12 +272,24 @@ fn alpha_derivatives(y: f64, mu: f64, alpha: f64) -> (f64, f64) {
 /// likelihood of huge counts is a difference of large log-gamma values, too coarse to compare
 /// near the maximum; the score is not); 0 when the maximum is at the boundary.
 fn profile_alpha(y: &[f64], mu: &[f64], w: &[f64], start: f64) -> f64 {
-    let loglik = |a: f64| -> f64 { (0..y.len()).map(|i| w[i] * row_loglik(y[i], mu[i], a)).sum() };
+    profile_alpha_steps(y, mu, w, start, 200)
+}
+
+/// At most `steps` Newton steps of [`profile_alpha`] (the alternation takes one per round: the
+/// means move under it anyway).
+fn profile_alpha_steps(y: &[f64], mu: &[f64], w: &[f64], start: f64, steps: usize) -> f64 {
+    let loglik = |a: f64| -> f64 {
+        let sums = GammaSums::new(1.0 / a, y);
+        (0..y.len())
+            .map(|i| w[i] * row_loglik_with(y[i], mu[i], a, &sums))
+            .sum()
+    };
     // The score and curvature in t: dl/dt = a g, d²l/dt² = a² h + a g.
     let derivatives = |a: f64| -> (f64, f64) {
+        let sums = GammaSums::new(1.0 / a, y);
         let (mut g, mut h) = (0.0, 0.0);
         for i in 0..y.len() {
-            let (d1, d2) = alpha_derivatives(y[i], mu[i], a);
+            let (d1, d2) = alpha_derivatives(y[i], mu[i], a, &sums);
             g += w[i] * d1;
             h += w[i] * d2;
         }
@@ -206,15 +298,17 @@ fn profile_alpha(y: &[f64], mu: &[f64], w: &[f64], start: f64) -> f64 {
     let mut a = start.max(1e-8);
     let mut value = loglik(a);
     let (mut gt, mut ht) = derivatives(a);
-    for _ in 0..200 {
+    for _ in 0..steps {
         let mut step = if ht < 0.0 { -gt / ht } else { gt.signum() };
         step = step.clamp(-3.0, 3.0);
         let mut moved = false;
         for _ in 0..40 {
             let candidate = a * step.exp();
             let (g_new, h_new) = derivatives(candidate);
-            let v_new = loglik(candidate);
-            if g_new.is_finite() && (v_new > value || g_new.abs() < gt.abs()) {
+            // The likelihood is evaluated only when the score alone does not decide.
+            let shrinks = g_new.is_finite() && g_new.abs() < gt.abs();
+            let v_new = if shrinks { value } else { loglik(candidate) };
+            if g_new.is_finite() && (shrinks || v_new > value) {
                 let done = step.abs() <= 1e-12;
                 (a, value, gt, ht) = (candidate, v_new, g_new, h_new);
                 moved = true;
@@ -292,7 +386,13 @@ fn alternate(
     let moment = score0 / (0..n).map(|i| w[i] * poisson.fitted[i].powi(2)).sum::<f64>();
     let mut alpha = profile_alpha(y, &poisson.fitted, w, moment);
     let mut fit = poisson.clone();
-    let mut previous_loglik = f64::NEG_INFINITY;
+    if !poisson.states.contains(&TermState::Boundary) {
+        // Most of the way with bare IRLS runs (no statistics or covariances per round); the
+        // full fits below then settle in a round or two.
+        let (settled_alpha, mu) = approach(design, input, opts, &poisson.states, &poisson.fitted, alpha);
+        alpha = settled_alpha;
+        fit.fitted = mu;
+    }
     for round in 1..=opts.max_iter {
         if alpha == 0.0 {
             return Ok(Alternation::Boundary);
@@ -307,11 +407,7 @@ fn alternate(
         }
         fit = next_fit;
         let next = profile_alpha(y, &fit.fitted, w, alpha);
-        let loglik = fit.stats.loglik.unwrap_or(f64::NAN);
-        let settled = (next - alpha).abs() <= 1e-10 * alpha
-            && (loglik - previous_loglik).abs() <= opts.tol.max(1e-14) * (loglik.abs() + 0.1);
-        previous_loglik = loglik;
-        if settled {
+        if (next - alpha).abs() <= 1e-10 * alpha && fit.converged {
             return Ok(Alternation::Fitted(fit, alpha));
         }
         alpha = next;
@@ -324,6 +420,47 @@ fn alternate(
         return Ok(Alternation::Boundary);
     }
     Ok(Alternation::Fitted(fit, alpha))
+}
+
+/// Alternates bare IRLS runs at fixed alpha (warm-started, on the columns the Poisson fit
+/// estimated) with the profile step for alpha until alpha settles; returns alpha and the means.
+fn approach(
+    design: &Design,
+    input: FitInput<'_>,
+    opts: FitOptions,
+    states: &[TermState],
+    start: &[f64],
+    mut alpha: f64,
+) -> (f64, Vec<f64>) {
+    let n = design.n_rows();
+    let standard = Standardised::new(design);
+    let active: Vec<usize> = (0..states.len())
+        .filter(|&j| states[j] == TermState::Estimated)
+        .collect();
+    let (zeros, ones) = (vec![0.0; n], vec![1.0; n]);
+    let offset = input.offset.unwrap_or(&zeros);
+    let w = input.weights.unwrap_or(&ones);
+    let mut mu = start.to_vec();
+    for _ in 0..opts.max_iter {
+        if alpha == 0.0 {
+            break;
+        }
+        let family = NegativeBinomial { alpha, warm: Some(&mu) };
+        let Some(run) = irls(&family, &standard.x, n, &active, input.y, offset, w, opts) else {
+            break;
+        };
+        if run.stalled || run.mu.iter().any(|m| !m.is_finite()) {
+            break;
+        }
+        mu = run.mu;
+        let next = profile_alpha_steps(input.y, &mu, w, alpha, 1);
+        let settled = (next - alpha).abs() <= 1e-10 * alpha && run.converged;
+        alpha = next;
+        if settled {
+            break;
+        }
+    }
+    (alpha, mu)
 }
 
 /// A Poisson fit reported as the NB fit at alpha = 0 (the boundary): same estimates and
@@ -374,6 +511,7 @@ fn joint_covariances(design: &Design, y: &[f64], w: &[f64], alpha: f64, fit: &mu
     let mut info = DMatrix::<f64>::zeros(k + 1, k + 1);
     let mut meat = DMatrix::<f64>::zeros(k + 1, k + 1);
     let mut score = DVector::<f64>::zeros(k + 1);
+    let sums = GammaSums::new(1.0 / alpha, y);
     for i in 0..n {
         let mu = fit.fitted[i];
         if !(mu > 0.0) {
@@ -382,7 +520,7 @@ fn joint_covariances(design: &Design, y: &[f64], w: &[f64], alpha: f64, fit: &mu
         let d = 1.0 + alpha * mu;
         let w_bb = w[i] * mu * (1.0 + alpha * y[i]) / (d * d);
         let w_ba = w[i] * mu * (y[i] - mu) / (d * d);
-        let (d1, d2) = alpha_derivatives(y[i], mu, alpha);
+        let (d1, d2) = alpha_derivatives(y[i], mu, alpha, &sums);
         let s_eta = w[i] * (y[i] - mu) / d;
         for a in 0..k {
             let xa = column(a)[i];
