@@ -185,6 +185,9 @@ const FIT_SQL: &str =
     "SELECT region, poisson_fit(count, exposure, x1, x2, x3, flag, kind) AS fit FROM t GROUP BY region";
 /// The same model as a negative binomial fit (alpha estimated; rows buffered), case M only.
 const NB_SQL: &str = "SELECT region, negbin_fit(count, exposure, x1, x2, x3, flag, kind) AS fit FROM t GROUP BY region";
+/// The 8-parameter Poisson fit with profile-likelihood intervals, case M only.
+const PROFILE_SQL: &str =
+    "SELECT region, poisson_fit(count, exposure, x1, x2, x3, flag, kind, 'ci=profile') AS fit FROM t GROUP BY region";
 /// Factor and integer predictors only: the fit runs on collapsed covariate patterns.
 const COLLAPSED_SQL: &str = "SELECT region, poisson_fit(count, exposure, flag, kind) AS fit FROM t GROUP BY region";
 
@@ -361,10 +364,13 @@ async fn main() -> datafusion::error::Result<()> {
         let floor = measure(&ctx, FLOOR_SQL, repeats).await?;
         let fit = measure(&ctx, FIT_SQL, repeats).await?;
         let collapsed = measure(&ctx, COLLAPSED_SQL, repeats).await?;
-        let negbin = if case.name == "M" {
-            Some(measure(&ctx, NB_SQL, repeats).await?)
+        let (negbin, profile) = if case.name == "M" {
+            (
+                Some(measure(&ctx, NB_SQL, repeats).await?),
+                Some(measure(&ctx, PROFILE_SQL, repeats).await?),
+            )
         } else {
-            None
+            (None, None)
         };
         let model_bytes = model_column_bytes(&ctx).await?;
         let secs = |m: &Measure| m.wall.as_secs_f64();
@@ -386,6 +392,9 @@ async fn main() -> datafusion::error::Result<()> {
         ];
         if let Some(nb) = &negbin {
             rows.push(("negbin_fit, 8 parameters", nb));
+        }
+        if let Some(p) = &profile {
+            rows.push(("poisson_fit, ci=profile", p));
         }
         for (label, m) in rows {
             println!(
@@ -420,6 +429,13 @@ async fn main() -> datafusion::error::Result<()> {
                 verdict(secs(&fit) < 2.0)
             ),
             _ => {}
+        }
+        if let Some(p) = &profile {
+            let r = secs(p) / secs(&fit);
+            println!(
+                "  target: profile intervals <= 10x the Wald fit: {r:.2}x, {}",
+                verdict(r <= 10.0)
+            );
         }
         if let Some(nb) = &negbin {
             let r = secs(nb) / secs(&fit);

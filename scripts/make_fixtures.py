@@ -188,6 +188,99 @@ def huge_counts_alpha():
     }
 
 
+def profile_limits(loglik_at, l_max, estimate, se, target, lower_bound=None, upper_bound=None):
+    """Both roots of 2*(l_max - loglik_at(b)) = target around the estimate, by scipy brentq on
+    brackets grown from the Wald limits; None for a side without a root."""
+    from scipy.optimize import brentq
+
+    f = lambda b: 2 * (l_max - loglik_at(b)) - target
+    out = []
+    for sign in (-1, 1):
+        start = estimate if estimate is not None else (upper_bound if sign > 0 else lower_bound)
+        if start is None:
+            out.append(None)
+            continue
+        width = se if se else 1.0
+        inner, outer = start, start + sign * width
+        k = 0
+        while f(outer) < 0 and k < 60:
+            inner, outer = outer, start + sign * width * 2 ** (k + 1)
+            k += 1
+        out.append(float(brentq(f, min(inner, outer), max(inner, outer), xtol=1e-13, rtol=1e-14)) if f(outer) >= 0 else None)
+    return out
+
+
+def profile_blocks(br):
+    """Profile-likelihood limits: for each coefficient, the constrained fits move b*x_j into the
+    offset and drop column j; statsmodels fits them and scipy brentq finds the roots."""
+    q95 = float(stats.chi2.ppf(0.95, 1))
+    off = np.log(br["n"])
+    X = pd.DataFrame({"intercept": 1.0, "smoke": br["smoke"].astype(float), "age": br["age"].astype(float)})
+    y = br["y"]
+    full = sm.GLM(y, X, family=sm.families.Poisson(), offset=off).fit(**FIT)
+    dispersion = full.pearson_chi2 / full.df_resid
+
+    def constrained_poisson(j):
+        rest = X.drop(columns=[X.columns[j]])
+        return lambda b: sm.GLM(y, rest, family=sm.families.Poisson(), offset=off + b * X.iloc[:, j]).fit(**FIT).llf
+
+    def constrained_nb(j):
+        rest = X.drop(columns=[X.columns[j]])
+
+        def loglik(b):
+            o = off + b * X.iloc[:, j]
+            p = sm.GLM(y, rest, family=sm.families.Poisson(), offset=o).fit(**FIT)
+            mu = np.asarray(p.fittedvalues, float)
+            yy = np.asarray(y, float)
+            a0 = max(1e-3, float((((yy - mu) ** 2 - yy).sum()) / (mu**2).sum()))
+            r = sm.NegativeBinomial(y, rest, loglike_method="nb2", offset=o).fit(
+                start_params=np.r_[np.asarray(p.params, float), a0], method="newton", maxiter=200, disp=0, tol=1e-12
+            )
+            return max(r.llf, p.llf)
+
+        return loglik
+
+    blocks = {"call": "scipy.optimize.brentq on 2*(llf_max - llf(b)) = chi2.ppf(level, 1) [* dispersion for quasi]; "
+              "llf(b): statsmodels GLM Poisson (or NegativeBinomial nb2, alpha re-estimated, Poisson llf if higher) "
+              "with b*x_j in the offset and column j dropped; boot::breslow, deaths ~ smoke + age, offset log(n)",
+              "terms": list(X.columns)}
+    blocks["poisson_95"] = [
+        profile_limits(constrained_poisson(j), full.llf, full.params.iloc[j], full.bse.iloc[j], q95) for j in range(3)
+    ]
+    blocks["poisson_quasi_95"] = [
+        profile_limits(constrained_poisson(j), full.llf, full.params.iloc[j], full.bse.iloc[j], q95 * dispersion)
+        for j in range(3)
+    ]
+    q90 = float(stats.chi2.ppf(0.90, 1))
+    blocks["poisson_90"] = [
+        profile_limits(constrained_poisson(j), full.llf, full.params.iloc[j], full.bse.iloc[j], q90) for j in range(3)
+    ]
+    nb = negbin_block(y, X, off)
+    blocks["negbin_95"] = [
+        profile_limits(constrained_nb(j), nb["llf"], nb["estimate"][j], nb["se_model"][j], q95) for j in range(3)
+    ]
+    # A factor level without events: its MLE is -inf; the upper limit is finite. l_max is the
+    # limit of the log-likelihood: the fit without the zero-count rows (they add 0 there).
+    zc = pd.DataFrame(
+        {
+            "y": [0, 0, 4, 6, 2, 3],
+            "e": [10.0, 12.0, 9.0, 11.0, 10.0, 8.0],
+            "g": ["a", "a", "b", "b", "c", "c"],
+        }
+    )
+    Z = pd.DataFrame({"intercept": 1.0, "g=a": indicator(zc, "g", "a"), "g=c": indicator(zc, "g", "c")})
+    keep = zc["y"].groupby(zc["g"]).transform("sum") > 0
+    lim = sm.GLM(zc["y"][keep], Z[keep][["intercept", "g=c"]], family=sm.families.Poisson(), offset=np.log(zc["e"][keep])).fit(**FIT)
+    rest = Z.drop(columns=["g=a"])
+    ll = lambda b: sm.GLM(zc["y"], rest, family=sm.families.Poisson(), offset=np.log(zc["e"]) + b * Z["g=a"]).fit(**FIT).llf
+    blocks["zero_cell"] = {
+        "data": zc.to_dict(orient="list"),
+        "terms": list(Z.columns),
+        "g=a_upper_95": profile_limits(ll, lim.llf, None, None, q95, lower_bound=-20.0, upper_bound=-20.0)[1],
+    }
+    return blocks
+
+
 def documentation_examples():
     """The value each SQL function's documentation example returns, computed independently."""
     poisson = sm.families.Poisson()
@@ -406,6 +499,7 @@ def main():
     out["two_rate_exact_tests"] = cases
 
     out["negative_binomial"] = negative_binomial_blocks(ins, dv, br)
+    out["profile_intervals"] = profile_blocks(br)
     out["documentation_examples"] = documentation_examples()
 
     OUT.write_text(json.dumps(out, indent=1) + "\n")

@@ -24,6 +24,7 @@ pub mod inference;
 mod irls;
 pub mod negbin;
 mod overdispersion;
+pub mod profile;
 mod solve;
 
 pub use design::{

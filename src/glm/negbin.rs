@@ -326,6 +326,25 @@ fn profile_alpha_steps(y: &[f64], mu: &[f64], w: &[f64], start: f64, steps: usiz
     if a < 1e-10 { 0.0 } else { a }
 }
 
+/// The NB2 log-likelihood at fixed means, maximised over alpha (0 at the boundary): the
+/// profile of a model without coefficients.
+pub fn loglik_at_means(y: &[f64], mu: &[f64], weights: Option<&[f64]>) -> f64 {
+    let ones = vec![1.0; y.len()];
+    let w = weights.unwrap_or(&ones);
+    let score0: f64 = (0..y.len()).map(|i| w[i] * ((y[i] - mu[i]).powi(2) - y[i])).sum();
+    let moment = score0 / (0..y.len()).map(|i| w[i] * mu[i] * mu[i]).sum::<f64>();
+    let alpha = if score0 > 0.0 {
+        profile_alpha(y, mu, w, moment)
+    } else {
+        0.0
+    };
+    if alpha == 0.0 {
+        Poisson.log_likelihood(y, mu, w)
+    } else {
+        NegativeBinomial { alpha, warm: None }.log_likelihood(y, mu, w)
+    }
+}
+
 /// Fits an NB2 model (see the module doc). Errors only for invalid input, as [`super::fit`].
 pub fn fit_negative_binomial(design: &Design, input: FitInput<'_>, opts: FitOptions) -> Result<GlmFit, FitError> {
     let poisson = fit_with_row_count(&Poisson, design, input, opts, design.n_rows())?;

@@ -8,14 +8,18 @@ use datafusion::error::{DataFusionError, Result};
 use super::decode::Dictionary;
 use super::fields::{DesignEntry, FitColumns, GroupReport, PredictorInfo};
 use super::group_buffer::{Column, GroupBuffer, GroupData, Response};
+use super::options::CiMethod;
 use super::spec::BufferKind;
-use crate::glm::collapse::fit_poisson_patterns;
+use crate::glm::collapse::{Sums, fit_poisson_patterns};
 use crate::glm::design::full_coded_factor;
 use crate::glm::fit_negative_binomial;
+use crate::glm::negbin::loglik_at_means;
+use crate::glm::profile::profile_interval;
 use crate::glm::{
     Design, DesignSpec, FactorColumn, FamilyKind, FitInput, Gaussian, GlmFit, Poisson, Predictor, PredictorValues, fit,
     term_table,
 };
+use crate::glm::{Family, SeType, TermRow, TermState};
 
 /// Fits every group of `buffer` and returns one struct per group.
 pub fn evaluate_groups<B: GroupBuffer>(buffer: &B) -> Result<StructArray> {
@@ -142,6 +146,7 @@ fn fit_group(data: &GroupData<'_>, out: &mut FitColumns) -> Result<()> {
         n_invalid: data.invalid,
         n_params: n_params as u64,
         se_type: &settings.se,
+        ci_method: settings.ci.name(),
         level: settings.level,
         total_count: spec.kind.counts().then_some(total_count),
         total_exposure: spec.kind.has_exposure().then_some(total_exposure),
@@ -173,6 +178,9 @@ fn fit_group(data: &GroupData<'_>, out: &mut FitColumns) -> Result<()> {
         fit_design(data, &design).map_err(|e| DataFusionError::Execution(format!("{}: {e}", spec.kind.sql_name())))?;
     let mut terms = term_table(&fitted, settings.se_type(), settings.level)
         .map_err(|e| DataFusionError::Execution(e.to_string()))?;
+    if settings.ci == CiMethod::Profile {
+        profile_terms(data, &design, &fitted, &mut terms)?;
+    }
     let mut status = fitted.status();
     if !spec.ratio_scale {
         for t in &mut terms {
@@ -198,13 +206,10 @@ fn fit_design(data: &GroupData<'_>, design: &Design) -> std::result::Result<GlmF
             debug_assert_eq!(spec.buffer, BufferKind::Patterns);
             fit_poisson_patterns(design, sums, options)
         }
-        Response::Rows { y, exposure } => {
-            let offset: Option<Vec<f64>> = spec
-                .kind
-                .has_exposure()
-                .then(|| exposure.iter().map(|e| e.ln()).collect());
+        Response::Rows { .. } => {
+            let (y, offset) = model_response(data);
             let input = FitInput {
-                y,
+                y: &y,
                 offset: offset.as_deref(),
                 weights: None,
             };
@@ -215,4 +220,86 @@ fn fit_design(data: &GroupData<'_>, design: &Design) -> std::result::Result<GlmF
             }
         }
     }
+}
+
+/// The response and offset the model sees: each row's (log exposure), or each pattern's totals.
+fn model_response(data: &GroupData<'_>) -> (Vec<f64>, Option<Vec<f64>>) {
+    match &data.response {
+        Response::Rows { y, exposure } => (
+            y.clone(),
+            data.spec
+                .kind
+                .has_exposure()
+                .then(|| exposure.iter().map(|e| e.ln()).collect()),
+        ),
+        Response::Patterns(sums) => (
+            sums.iter().map(Sums::total_count).collect(),
+            Some(sums.iter().map(|s| s.total_exposure().ln()).collect()),
+        ),
+    }
+}
+
+/// Profile-likelihood limits in place of the Wald ones (option `ci=profile`): per estimated or
+/// boundary term, refits with the coefficient held fixed (see `glm::profile`). Pattern fits are
+/// profiled on the patterns, whose log-likelihood differs from the rows' by a constant.
+fn profile_terms(data: &GroupData<'_>, design: &Design, fitted: &GlmFit, terms: &mut [TermRow]) -> Result<()> {
+    let spec = data.spec;
+    let options = spec.settings.fit_options();
+    let (y, offset) = model_response(data);
+    let input = FitInput {
+        y: &y,
+        offset: offset.as_deref(),
+        weights: None,
+    };
+    let exec = |e: crate::glm::FitError| DataFusionError::Execution(format!("{}: {e}", spec.kind.sql_name()));
+    let negative_binomial = spec.family() == FamilyKind::NegativeBinomial;
+    let refit = move |d: &Design, i: FitInput<'_>| -> std::result::Result<Option<f64>, crate::glm::FitError> {
+        let means = || -> Vec<f64> {
+            i.offset
+                .map_or_else(|| vec![1.0; i.y.len()], |o| o.iter().map(|v| v.exp()).collect())
+        };
+        if d.n_columns() == 0 {
+            return Ok(Some(if negative_binomial {
+                loglik_at_means(i.y, &means(), i.weights)
+            } else {
+                Poisson.log_likelihood(i.y, &means(), &vec![1.0; i.y.len()])
+            }));
+        }
+        let f = if negative_binomial {
+            fit_negative_binomial(d, i, options)?
+        } else {
+            fit(&Poisson, d, i, options)?
+        };
+        Ok(f.stats.loglik)
+    };
+    // The fit the profile starts from, on the same level (rows or patterns) as the refits.
+    let pattern_fit;
+    let base = match &data.response {
+        Response::Patterns(_) => {
+            pattern_fit = fit(&Poisson, design, input, options).map_err(exec)?;
+            &pattern_fit
+        }
+        Response::Rows { .. } => fitted,
+    };
+    let dispersion = if spec.settings.se_type() == SeType::Quasi {
+        fitted.dispersion().unwrap_or(f64::NAN)
+    } else {
+        1.0
+    };
+    for (j, t) in terms.iter_mut().enumerate() {
+        if !matches!(base.states[j], TermState::Estimated | TermState::Boundary) || !dispersion.is_finite() {
+            continue;
+        }
+        let limits = profile_interval(&refit, design, input, base, j, spec.settings.level, dispersion).map_err(exec)?;
+        (t.ci_low, t.ci_high) = (limits.low, limits.high);
+        (t.rr_low, t.rr_high) = (limits.low.map(f64::exp), limits.high.map(f64::exp));
+        if base.states[j] == TermState::Boundary {
+            t.flag = Some(match (limits.low, limits.high) {
+                (None, Some(_)) => "boundary (lower limit infinite)",
+                (Some(_), None) => "boundary (upper limit infinite)",
+                _ => "boundary",
+            });
+        }
+    }
+    Ok(())
 }

@@ -142,6 +142,8 @@ pub struct GroupReport<'a> {
     pub n_params: u64,
     pub fit: Option<&'a GlmFit>,
     pub se_type: &'a str,
+    /// How the intervals were computed (`wald` or `profile`).
+    pub ci_method: &'static str,
     pub level: f64,
     pub total_count: Option<f64>,
     pub total_exposure: Option<f64>,
@@ -233,6 +235,7 @@ record_table! {
         CrudeRate: "crude_rate", Float, NonNegative, |r| r.crude_rate();
         SeType: "se_type", Text, Any, |r| Some(r.se_type.to_string());
         Level: "level", Float, Probability, |r| Some(r.level);
+        CiMethod: "ci_method", Text, Any, |r| Some(r.ci_method.to_string());
         Alpha: "alpha", Float, NonNegative, |r| r.alpha().map(|a| a.estimate);
         AlphaStdError: "alpha_std_error", Float, NonNegative, |r| r.alpha().and_then(|a| a.std_error);
         AlphaCiLow: "alpha_ci_low", Float, NonNegative, |r| r.alpha_interval().map(|i| i.0);

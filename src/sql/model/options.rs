@@ -144,6 +144,7 @@ pub const OPTION_KEYS: &[&str] = &[
     "intercept",
     "max_iter",
     "tol",
+    "ci",
     "response",
     "ref.<predictor>",
 ];
@@ -153,6 +154,24 @@ pub const OPTION_KEYS: &[&str] = &[
 pub enum InvalidRows {
     Error,
     Skip,
+}
+
+/// How intervals are computed (option `ci`).
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+pub enum CiMethod {
+    /// estimate ± quantile · standard error.
+    Wald,
+    /// Where the profile log-likelihood drops by half the chi-square quantile.
+    Profile,
+}
+
+impl CiMethod {
+    pub fn name(self) -> &'static str {
+        match self {
+            CiMethod::Wald => "wald",
+            CiMethod::Profile => "profile",
+        }
+    }
 }
 
 /// How the response of a least-squares fit is to be read (option `response`).
@@ -176,6 +195,7 @@ pub struct FitSettings {
     /// The `response` option as given; `None` when the call leaves it to the response
     /// expression (see `spec::resolve_call`).
     pub response: Option<ResponseScale>,
+    pub ci: CiMethod,
     /// Reference level per factor predictor name.
     pub references: BTreeMap<String, String>,
 }
@@ -191,6 +211,7 @@ impl FitSettings {
             max_iter: 100,
             tol: 1e-12,
             response: None,
+            ci: CiMethod::Wald,
             references: BTreeMap::new(),
         }
     }
@@ -270,6 +291,13 @@ impl FitSettings {
                     return Err(bad("expected a number in (0, 0.01]"));
                 }
                 self.tol = v;
+            }
+            "ci" => {
+                self.ci = match value.to_ascii_lowercase().as_str() {
+                    "wald" => CiMethod::Wald,
+                    "profile" => CiMethod::Profile,
+                    _ => return Err(bad("valid values are wald, profile")),
+                }
             }
             "response" => {
                 self.response = Some(match value.to_ascii_lowercase().as_str() {

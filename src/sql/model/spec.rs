@@ -303,6 +303,12 @@ pub fn check_references(function: &str, settings: &FitSettings, predictors: &[Pr
 /// Settings a family cannot use: quasi standard errors for a family whose own parameter already
 /// models the extra variance.
 fn check_family_settings(kind: FitKind, settings: &FitSettings) -> Result<()> {
+    if kind.family() == FamilyKind::Gaussian && settings.ci == super::options::CiMethod::Profile {
+        return Err(plan_error(format!(
+            "{}: ci=profile is for Poisson and negative binomial fits; least-squares intervals are exact t intervals",
+            kind.sql_name()
+        )));
+    }
     if kind.family() == FamilyKind::NegativeBinomial && settings.se_type() == crate::glm::SeType::Quasi {
         return Err(plan_error(format!(
             "{}: se=quasi is not available for negative binomial fits (alpha already models the extra \
