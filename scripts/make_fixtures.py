@@ -132,6 +132,13 @@ def negative_binomial_blocks(ins, dv, br):
     at alpha = 0 (the score of alpha at 0, from the Poisson fit, is negative)."""
     X = pd.DataFrame({"intercept": 1.0, "smoke": br["smoke"].astype(float), "age": br["age"].astype(float)})
     out = {"breslow_smoke_age": negbin_block(br["y"], X, np.log(br["n"]))}
+    age_only = negbin_block(br["y"], X[["intercept", "age"]], np.log(br["n"]))
+    lr = 2 * (out["breslow_smoke_age"]["llf"] - age_only["llf"])
+    out["breslow_nested_lr"] = {
+        "call": "2*(llf(NB2 smoke + age) - llf(NB2 age)), alpha re-estimated in each; scipy.stats.chi2.sf(lr, 1)",
+        "chi2": float(lr),
+        "p_value": float(stats.chi2.sf(lr, 1)),
+    }
     cols = {"intercept": np.ones(len(ins))}
     for v, levels in [("District", [2, 3, 4]), ("Group", ["1-1.5l", "1.5-2l", ">2l"]), ("Age", ["25-29", "30-35", ">35"])]:
         for lv in levels:
@@ -325,6 +332,10 @@ def documentation_examples():
         "poisson_fit": {"call": "exp(GLM Poisson offset=log(km_years) param material=pvc)", "value": float(np.exp(full.params["material=pvc"]))},
         "fit_term": {"call": "same as poisson_fit", "value": float(np.exp(full.params["material=pvc"]))},
         "fit_expected": {"call": "sum(breaks) / sum(fittedvalues) of the same GLM", "value": float(four["breaks"].sum() / full.fittedvalues.sum())},
+        "fit_expected_interval": {
+            "call": "exp(upper of the same GLM's get_prediction([1, 1], offset=log(100), which='linear').conf_int(alpha=0.1))",
+            "value": float(np.exp(full.get_prediction(np.array([[1.0, 1.0]]), offset=np.log([100.0]), which="linear").conf_int(alpha=0.1)[0][1])),
+        },
         "fit_lr_test": {"call": "scipy.stats.chi2.sf(2*(llf_full - llf_null), 1)", "value": float(stats.chi2.sf(lr, 1))},
         "interaction": {"call": "GLM Poisson with material, age, material:age; param material=pvc:age", "value": float(inter.params["material=pvc:age"])},
         "poisson_count_fit": {"call": "GLM Poisson callouts ~ season: pearson_chi2 / df_resid", "value": float(counts.pearson_chi2 / counts.df_resid)},
@@ -332,6 +343,72 @@ def documentation_examples():
         "rate_ratio_test": {"call": "scipy.stats.binomtest(32, 34, 52407/(52407+18790)).pvalue", "value": float(stats.binomtest(32, 34, 52407 / (52407 + 18790)).pvalue)},
         "rate_interval": {"call": "scipy.stats.chi2.ppf(0.975, 2*(5+1)) / 2 / 1000 (Garwood upper limit)", "value": float(stats.chi2.ppf(0.975, 12) / 2 / 1000)},
     }
+
+
+def expected_intervals(ins, br, dv):
+    """fit_expected_interval check values: the delta method on the linear predictor, mapped
+    through the inverse link (statsmodels get_prediction(which='linear').conf_int(), then exp)."""
+    def linear_ci(res, exog, offset, alpha):
+        kw = {} if offset is None else {"offset": offset}
+        pred = res.get_prediction(exog, which="linear", **kw)
+        low, high = pred.conf_int(alpha=alpha)[0]
+        return float(pred.predicted[0]), float(low), float(high)
+
+    out = {}
+    cols = {"intercept": np.ones(len(ins))}
+    for v, levels in [("District", [2, 3, 4]), ("Group", ["1-1.5l", "1.5-2l", ">2l"]), ("Age", ["25-29", "30-35", ">35"])]:
+        for lv in levels:
+            cols[f"{v}={lv}"] = indicator(ins, v, lv)
+    X = pd.DataFrame(cols)
+    # The row District 3, Group 1.5-2l, Age >35 with 1000 holders.
+    row = np.array([[1.0, 0, 1, 0, 0, 1, 0, 0, 0, 1]])
+    model = sm.GLM(ins["Claims"], X, family=sm.families.Poisson(), offset=np.log(ins["Holders"]))
+    for name, fit_kw, alpha in [
+        ("insurance_model_95", {}, 0.05),
+        ("insurance_hc0_95", {"cov_type": "HC0"}, 0.05),
+        ("insurance_quasi_90", {"scale": "X2"}, 0.10),
+    ]:
+        res = model.fit(**FIT, **fit_kw)
+        eta, low, high = linear_ci(res, row, np.log([1000.0]), alpha)
+        out[name] = {
+            "call": f"sm.GLM(Claims, X, Poisson, offset=log(Holders)).fit({fit_kw}).get_prediction(row, "
+            f"offset=log(1000), which='linear').conf_int(alpha={alpha}), exp of each",
+            "row": "District=3, Group=1.5-2l, Age=>35, exposure 1000",
+            "expected": float(np.exp(eta)),
+            "low": float(np.exp(low)),
+            "high": float(np.exp(high)),
+        }
+    # Negative binomial (NB2) on boot::breslow: smoke = 1, age = 60, 10000 person-years.
+    Xb = pd.DataFrame({"intercept": 1.0, "smoke": br["smoke"].astype(float), "age": br["age"].astype(float)})
+    poisson = sm.GLM(br["y"], Xb, family=sm.families.Poisson(), offset=np.log(br["n"])).fit(**FIT)
+    mu = np.asarray(poisson.fittedvalues, float)
+    yy = np.asarray(br["y"], float)
+    alpha0 = max(1e-3, float((((yy - mu) ** 2 - yy).sum()) / (mu**2).sum()))
+    nb = sm.NegativeBinomial(br["y"], Xb, loglike_method="nb2", offset=np.log(br["n"])).fit(
+        start_params=np.r_[np.asarray(poisson.params, float), alpha0], method="newton", maxiter=200, disp=0, tol=1e-12
+    )
+    eta, low, high = linear_ci(nb, np.array([[1.0, 1.0, 60.0]]), np.log([10000.0]), 0.05)
+    out["breslow_negbin_95"] = {
+        "call": "sm.NegativeBinomial(y, [1, smoke, age], nb2, offset=log(n)).fit(newton from the Poisson fit)"
+        ".get_prediction([1, 1, 60], offset=log(10000), which='linear').conf_int(alpha=0.05), exp of each",
+        "row": "smoke=1, age=60, exposure 10000",
+        "expected": float(np.exp(eta)),
+        "low": float(np.exp(low)),
+        "high": float(np.exp(high)),
+    }
+    # Least squares: OLS of log(visits + 1) on age (AER::DoctorVisits), t quantile on df_resid;
+    # the interval is for the mean response at age 0.5 (identity link, no exposure).
+    ols = sm.OLS(np.log(dv["visits"] + 1.0), sm.add_constant(dv["age"].astype(float))).fit()
+    pred = ols.get_prediction(np.array([[1.0, 0.5]]))
+    low, high = pred.conf_int(alpha=0.05)[0]
+    out["doctorvisits_ols_95"] = {
+        "call": "sm.OLS(log(visits + 1), [1, age]).fit().get_prediction([1, 0.5]).conf_int(alpha=0.05)",
+        "row": "age=0.5",
+        "expected": float(pred.predicted_mean[0]),
+        "low": float(low),
+        "high": float(high),
+    }
+    return out
 
 
 def main():
@@ -499,6 +576,7 @@ def main():
     out["two_rate_exact_tests"] = cases
 
     out["negative_binomial"] = negative_binomial_blocks(ins, dv, br)
+    out["expected_intervals"] = expected_intervals(ins, br, dv)
     out["profile_intervals"] = profile_blocks(br)
     out["documentation_examples"] = documentation_examples()
 

@@ -81,11 +81,7 @@ pub fn term_table(fit: &GlmFit, se: SeType, level: f64) -> Result<Vec<TermRow>, 
     let df = fit.stats.df_resid.unwrap_or(0);
     let scale = se_scale(fit, se);
     let use_t = fit.scale.uses_t();
-    let quantile = if use_t {
-        (df > 0).then(|| student_t_quantile(0.5 + level / 2.0, df as f64))
-    } else {
-        Some(normal_quantile(0.5 + level / 2.0))
-    };
+    let quantile = wald_quantile(fit.scale, fit.stats.df_resid, level);
     Ok(fit
         .names
         .iter()
@@ -111,14 +107,10 @@ pub fn term_table(fit: &GlmFit, se: SeType, level: f64) -> Result<Vec<TermRow>, 
             let b = fit.estimates[j];
             row.estimate = Some(b);
             row.rate_ratio = finite(b.exp());
-            let variance = match se {
-                SeType::Model | SeType::Quasi => fit.cov_unscaled[(j, j)],
-                SeType::Hc0 | SeType::Hc1 => fit.cov_sandwich[(j, j)],
-            };
             let (Some(scale), Some(q)) = (scale, quantile) else {
                 return row;
             };
-            let s = (variance * scale).sqrt();
+            let s = (base_covariance(fit, se)[(j, j)] * scale).sqrt();
             if !(s.is_finite() && s > 0.0) {
                 return row;
             }
@@ -142,6 +134,33 @@ pub fn term_table(fit: &GlmFit, se: SeType, level: f64) -> Result<Vec<TermRow>, 
 /// `Some(v)` for finite v: exp of a large estimate overflows, and is then not reported.
 fn finite(v: f64) -> Option<f64> {
     v.is_finite().then_some(v)
+}
+
+/// The covariance the standard errors of kind `se` come from, before its scale factor.
+fn base_covariance(fit: &GlmFit, se: SeType) -> &nalgebra::DMatrix<f64> {
+    match se {
+        SeType::Model | SeType::Quasi => &fit.cov_unscaled,
+        SeType::Hc0 | SeType::Hc1 => &fit.cov_sandwich,
+    }
+}
+
+/// The covariance of the coefficients behind standard errors of kind `se` (zero rows and
+/// columns for terms not estimated); `None` when it does not exist (quasi or HC1 without
+/// residual degrees of freedom). Scoring intervals use it (the delta method on x'b).
+pub fn coefficient_covariance(fit: &GlmFit, se: SeType) -> Option<nalgebra::DMatrix<f64>> {
+    let scale = se_scale(fit, se)?;
+    Some(base_covariance(fit, se) * scale)
+}
+
+/// The quantile of the reference distribution of `fit`'s Wald intervals at `level` (normal, or
+/// t on df_resid for an estimated scale); `None` without residual degrees of freedom for t.
+pub fn wald_quantile(fit_scale: Scale, df_resid: Option<usize>, level: f64) -> Option<f64> {
+    if fit_scale.uses_t() {
+        let df = df_resid.filter(|&d| d > 0)? as f64;
+        Some(student_t_quantile(0.5 + level / 2.0, df))
+    } else {
+        Some(normal_quantile(0.5 + level / 2.0))
+    }
 }
 
 /// Factor applied to the chosen covariance's diagonal; `None` when it does not exist.

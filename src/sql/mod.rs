@@ -34,6 +34,7 @@ pub fn scalar_functions() -> Vec<ScalarUDF> {
     vec![
         functions::fit_term::fit_term(),
         functions::fit_expected::fit_expected(),
+        functions::fit_expected_interval::fit_expected_interval(),
         functions::fit_comparison::fit_lr_test(),
         functions::rate_interval::rate_interval(),
         functions::rate_comparison::rate_ratio_test(),

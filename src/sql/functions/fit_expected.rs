@@ -33,9 +33,27 @@ pub fn fit_expected() -> ScalarUDF {
 }
 
 /// A row's predictor value.
-enum Value {
+/// One predictor argument's values.
+pub(crate) enum Value {
     Number(Float64Array),
     Text(StringArray),
+}
+
+/// The predictor arguments, decoded with the same rule as the fits: text, boolean and
+/// dictionary values are factor levels, numbers are numbers.
+pub(crate) fn predictor_values(function: &str, arrays: &[ArrayRef]) -> Result<Vec<Value>> {
+    arrays
+        .iter()
+        .enumerate()
+        .map(|(k, x)| {
+            let kind = PredictorKind::of(function, &format!("{}", k + 1), x.data_type())?;
+            Ok(if kind.is_factor() {
+                Value::Text(texts(x)?)
+            } else {
+                Value::Number(floats(x)?)
+            })
+        })
+        .collect()
 }
 
 impl ScalarUDFImpl for FitExpected {
@@ -71,22 +89,11 @@ impl ScalarUDFImpl for FitExpected {
         let a = arg_arrays(&args)?;
         let view = FitReader::new("fit_expected", &a[0])?;
         let exposure = floats(&a[1])?;
-        // The same rule as the fits: text, boolean and dictionary values are factor levels.
-        let values: Vec<Value> = a[2..]
-            .iter()
-            .enumerate()
-            .map(|(k, x)| {
-                let kind = PredictorKind::of("fit_expected", &format!("{}", k + 1), x.data_type())?;
-                Ok(if kind.is_factor() {
-                    Value::Text(texts(x)?)
-                } else {
-                    Value::Number(floats(x)?)
-                })
-            })
-            .collect::<Result<_>>()?;
+        let values = predictor_values("fit_expected", &a[2..])?;
         let mut out = Vec::with_capacity(args.number_rows);
         for r in 0..args.number_rows {
-            out.push(expected_row(&view, &exposure, &values, r)?);
+            let row = scoring_row("fit_expected", &view, &exposure, &values, r)?;
+            out.push(row.map(|row| row.mean(row.eta())).filter(|v| v.is_finite()));
         }
         Ok(ColumnarValue::Array(Arc::new(Float64Array::from(out)) as ArrayRef))
     }
@@ -95,14 +102,44 @@ impl ScalarUDFImpl for FitExpected {
     }
 }
 
-fn expected_row(view: &FitReader<'_>, exposure: &Float64Array, values: &[Value], r: usize) -> Result<Option<f64>> {
+/// A row to score: the fit's coefficients that the row's design vector meets.
+pub(crate) struct ScoringRow {
+    /// (term index within the row's terms, x_j, b_j) for every estimated term.
+    pub parts: Vec<(usize, f64, f64)>,
+    /// log(exposure), or 0 for least-squares fits.
+    pub offset: f64,
+    pub gaussian: bool,
+}
+
+impl ScoringRow {
+    /// x'b plus the offset.
+    pub fn eta(&self) -> f64 {
+        self.offset + self.parts.iter().map(|(_, x, b)| x * b).sum::<f64>()
+    }
+
+    /// The mean at linear predictor `eta`: exp(eta) for log-link fits, eta for least squares.
+    pub fn mean(&self, eta: f64) -> f64 {
+        if self.gaussian { eta } else { eta.exp() }
+    }
+}
+
+/// The design vector of row `r` against the fit of that row, or `None` when the row cannot be
+/// scored (a NULL value, a factor level the fit never saw, a needed coefficient without a
+/// finite estimate).
+pub(crate) fn scoring_row(
+    function: &str,
+    view: &FitReader<'_>,
+    exposure: &Float64Array,
+    values: &[Value],
+    r: usize,
+) -> Result<Option<ScoringRow>> {
     if view.is_null(r) || exposure.is_null(r) {
         return Ok(None);
     }
     let predictors = view.predictor_range(r);
     if predictors.len() != values.len() {
         return Err(exec_error(format!(
-            "fit_expected: the fit has {} predictors but {} were given (give them in the order of the fit call)",
+            "{function}: the fit has {} predictors but {} were given (give them in the order of the fit call)",
             predictors.len(),
             values.len()
         )));
@@ -132,13 +169,13 @@ fn expected_row(view: &FitReader<'_>, exposure: &Float64Array, values: &[Value],
             }
             (_, true) => {
                 return Err(exec_error(format!(
-                    "fit_expected: predictor {} ({name}) is a factor in the fit, so its value must be text or boolean",
+                    "{function}: predictor {} ({name}) is a factor in the fit, so its value must be text or boolean",
                     k + 1
                 )));
             }
             (_, false) => {
                 return Err(exec_error(format!(
-                    "fit_expected: predictor {} ({name}) is numeric in the fit, so its value must be a number",
+                    "{function}: predictor {} ({name}) is numeric in the fit, so its value must be a number",
                     k + 1
                 )));
             }
@@ -162,8 +199,8 @@ fn expected_row(view: &FitReader<'_>, exposure: &Float64Array, values: &[Value],
     if terms.len() != design.len() || terms.is_empty() {
         return Ok(None);
     }
-    let mut eta = 0.0;
-    for (t, d) in terms.zip(design) {
+    let mut parts = Vec::new();
+    for (j, (t, d)) in terms.zip(design).enumerate() {
         let x = part_value(
             view.design_index(DesignField::Predictor, d),
             view.design_text(DesignField::Level, d),
@@ -175,29 +212,31 @@ fn expected_row(view: &FitReader<'_>, exposure: &Float64Array, values: &[Value],
             view.term_float(TermField::Estimate, t),
             view.term_text(TermField::Flag, t),
         ) {
-            (Some(b), _) => eta += b * x,
+            (Some(b), _) => parts.push((j, x, b)),
             (None, Some(flag)) if flag == TermState::Aliased.flag().unwrap_or_default() => {}
             (None, _) if x == 0.0 => {}
             (None, _) => return Ok(None),
         }
     }
-    Ok(Some(if view.family(r) == Some(FamilyKind::Gaussian) {
-        eta
-    } else {
-        exposure.value(r) * eta.exp()
+    let gaussian = view.family(r) == Some(FamilyKind::Gaussian);
+    Ok(Some(ScoringRow {
+        parts,
+        offset: if gaussian { 0.0 } else { exposure.value(r).ln() },
+        gaussian,
     }))
 }
 
 static DOC: LazyLock<Documentation> = LazyLock::new(|| {
     Documentation::builder(
         DOC_SECTION,
-        "Expected count of a row under a fit: exposure * exp(x'b) for Poisson fits (x'b for linear fits). \
+        "Expected count of a row under a fit: exposure * exp(x'b) for Poisson and negative binomial fits (x'b for \
+         linear fits). \
          Give the predictors in the order of the fit call. NULL when a factor value did not occur in the \
          fitted group or a needed coefficient has no finite estimate. Join fits back to rows to compare \
          observed with expected counts: SUM(count) / SUM(fit_expected(...)) per area.",
         "fit_expected(fit, exposure, predictor, ...)",
     )
-    .with_argument("fit", "A fit returned by poisson_fit, poisson_count_fit or linear_fit.")
+    .with_argument("fit", "A fit returned by one of the fit functions.")
     .with_argument("exposure", "Exposure of the row (use 1 for count fits).")
     .with_argument("predictor", "The row's predictor values, in the order of the fit call.")
     .with_sql_example(

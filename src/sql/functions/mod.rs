@@ -5,6 +5,7 @@
 pub mod args;
 pub mod fit_comparison;
 pub mod fit_expected;
+pub mod fit_expected_interval;
 pub mod fit_term;
 pub mod interaction;
 pub mod linear_fit;

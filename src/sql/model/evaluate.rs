@@ -13,6 +13,7 @@ use super::spec::BufferKind;
 use crate::glm::collapse::{Sums, fit_poisson_patterns};
 use crate::glm::design::full_coded_factor;
 use crate::glm::fit_negative_binomial;
+use crate::glm::inference::coefficient_covariance;
 use crate::glm::negbin::loglik_at_means;
 use crate::glm::profile::profile_interval;
 use crate::glm::{
@@ -158,12 +159,12 @@ fn fit_group(data: &GroupData<'_>, out: &mut FitColumns) -> Result<()> {
     };
     let design = match (&problem, Design::build(n, &design_spec)) {
         (Some(p), _) => {
-            out.push(&report(p.clone(), 0), Vec::new(), &infos, &[]);
+            out.push(&report(p.clone(), 0), Vec::new(), &infos, &[], None);
             return Ok(());
         }
         // A too-wide design is a property of this group's data: it is reported on the group.
         (None, Err(e)) => {
-            out.push(&report(format!("not fitted: {e}"), 0), Vec::new(), &infos, &[]);
+            out.push(&report(format!("not fitted: {e}"), 0), Vec::new(), &infos, &[], None);
             return Ok(());
         }
         (None, Ok(d)) => d,
@@ -192,7 +193,8 @@ fn fit_group(data: &GroupData<'_>, out: &mut FitColumns) -> Result<()> {
         fit: Some(&fitted),
         ..report(status, design.n_columns())
     };
-    out.push(&report, terms, &infos, &entries);
+    let covariance = coefficient_covariance(&fitted, settings.se_type());
+    out.push(&report, terms, &infos, &entries, covariance.as_ref());
     Ok(())
 }
 

@@ -324,6 +324,9 @@ record_table! {
 pub const TERMS: &str = "terms";
 pub const PREDICTORS: &str = "predictors";
 pub const DESIGN: &str = "design";
+/// The coefficients' covariance behind the standard errors (row-major, terms x terms; NULL for
+/// terms not estimated), for scoring intervals.
+pub const COVARIANCE: &str = "covariance";
 
 fn list_of<T: RecordTable>() -> DataType {
     DataType::List(Arc::new(Field::new("item", DataType::Struct(T::fields()), true)))
@@ -334,8 +337,13 @@ static FIT_STRUCT: LazyLock<Fields> = LazyLock::new(|| {
     fields.push(Field::new(TERMS, list_of::<TermField>(), true));
     fields.push(Field::new(PREDICTORS, list_of::<PredictorField>(), true));
     fields.push(Field::new(DESIGN, list_of::<DesignField>(), true));
+    fields.push(Field::new(COVARIANCE, float_list(), true));
     Fields::from(fields)
 });
+
+fn float_list() -> DataType {
+    DataType::List(Arc::new(Field::new("item", DataType::Float64, true)))
+}
 
 /// The struct type returned by `poisson_fit`, `poisson_count_fit` and `linear_fit`.
 pub fn fit_type() -> DataType {
@@ -471,6 +479,8 @@ pub struct FitColumns {
     terms: RecordLists<TermField>,
     predictors: RecordLists<PredictorField>,
     design: RecordLists<DesignField>,
+    covariance: Vec<Option<f64>>,
+    covariance_offsets: Vec<i32>,
 }
 
 impl Default for FitColumns {
@@ -486,17 +496,32 @@ impl FitColumns {
             terms: RecordLists::new(),
             predictors: RecordLists::new(),
             design: RecordLists::new(),
+            covariance: Vec::new(),
+            covariance_offsets: vec![0],
         }
     }
 
+    /// Adds one group. `covariance` (terms x terms) is written only where both terms are
+    /// estimated; elsewhere NULL.
     pub fn push(
         &mut self,
         report: &GroupReport<'_>,
         terms: Vec<TermRow>,
         predictors: &[PredictorInfo],
         design: &[DesignEntry],
+        covariance: Option<&nalgebra::DMatrix<f64>>,
     ) {
         self.fits.push(report);
+        if let (Some(c), Some(fit)) = (covariance, report.fit) {
+            let estimated = |j: usize| fit.states.get(j) == Some(&crate::glm::TermState::Estimated);
+            for i in 0..c.nrows() {
+                for j in 0..c.ncols() {
+                    let v = (estimated(i) && estimated(j)).then(|| c[(i, j)]);
+                    self.covariance.push(Range::Any.report(v));
+                }
+            }
+        }
+        self.covariance_offsets.push(self.covariance.len() as i32);
         let terms: Vec<TermRow> = terms.into_iter().map(flag_lost_estimate).collect();
         self.terms.push_row(&terms);
         self.predictors.push_row(predictors);
@@ -508,6 +533,12 @@ impl FitColumns {
         arrays.push(self.terms.finish());
         arrays.push(self.predictors.finish());
         arrays.push(self.design.finish());
+        arrays.push(Arc::new(ListArray::new(
+            Arc::new(Field::new("item", DataType::Float64, true)),
+            OffsetBuffer::new(self.covariance_offsets.into()),
+            Arc::new(Float64Array::from(self.covariance)),
+            None,
+        )));
         StructArray::new(FIT_STRUCT.clone(), arrays, None)
     }
 }
@@ -522,6 +553,7 @@ pub struct FitReader<'a> {
     design_values: &'a StructArray,
     predictors: &'a ListArray,
     predictor_values: &'a StructArray,
+    covariance: Option<&'a ListArray>,
 }
 
 impl<'a> FitReader<'a> {
@@ -547,7 +579,9 @@ impl<'a> FitReader<'a> {
         let (terms, term_values) = list(TERMS)?;
         let (design, design_values) = list(DESIGN)?;
         let (predictors, predictor_values) = list(PREDICTORS)?;
+        let covariance = fits.column_by_name(COVARIANCE).and_then(|c| c.as_list_opt::<i32>());
         Some(FitReader {
+            covariance,
             fits,
             terms,
             term_values,
@@ -634,6 +668,19 @@ impl<'a> FitReader<'a> {
     /// The kind of predictor entry `i` (factor or a number).
     pub fn predictor_is_factor(&self, i: usize) -> bool {
         self.predictor_text(PredictorField::Kind, i) == Some(PredictorKind::Factor.report_name())
+    }
+
+    /// Entry (a, b) of row `r`'s coefficient covariance (terms numbered as in `terms`).
+    pub fn covariance(&self, r: usize, a: usize, b: usize) -> Option<f64> {
+        let list = self.covariance?;
+        let p = self.term_range(r).len();
+        let range = Self::range(list, r);
+        if range.len() != p * p || a >= p || b >= p {
+            return None;
+        }
+        let values = list.values().as_primitive_opt::<Float64Type>()?;
+        let i = range.start + a * p + b;
+        (!values.is_null(i)).then(|| values.value(i))
     }
 
     pub fn design_text(&self, field: DesignField, i: usize) -> Option<&'a str> {
