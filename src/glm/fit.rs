@@ -301,7 +301,7 @@ pub(crate) fn fit_with_row_count<F: Family>(
         });
     }
 
-    let Some(run) = irls(family, &standard.x, n, &active, y, offset, w, opts) else {
+    let Some(run) = irls(family, &standard.x, n, &active, y, offset, w, opts, None) else {
         issues.push(FitIssue::NumericalBreakdown);
         return Ok(unfitted(family, design, stats, issues));
     };

@@ -119,6 +119,8 @@ pub(crate) struct IrlsRun {
     pub beta: Vec<f64>,
     pub eta: Vec<f64>,
     pub mu: Vec<f64>,
+    /// The deviance at `mu` (the family's step deviance; infinite if no step was taken).
+    pub deviance: f64,
     pub iterations: usize,
     pub converged: bool,
     /// The weighted normal equations became singular (weights of some rows underflowed):
@@ -129,6 +131,8 @@ pub(crate) struct IrlsRun {
 /// Step-halving attempts before giving up on an iteration.
 const MAX_HALVINGS: usize = 30;
 
+/// IRLS on the `active` columns of the standardised `x` (n rows), from the family's starting
+/// means or from `start` (the means of a nearby fit: a warm start for a run of related fits).
 #[allow(clippy::too_many_arguments)]
 pub(crate) fn irls<F: Family>(
     family: &F,
@@ -139,10 +143,14 @@ pub(crate) fn irls<F: Family>(
     offset: &[f64],
     w: &[f64],
     opts: FitOptions,
+    start: Option<&[f64]>,
 ) -> Option<IrlsRun> {
     let k = active.len();
     let mut mu = vec![0.0; n];
-    family.start(y, offset, w, &mut mu);
+    match start {
+        Some(m) if m.len() == n => mu.copy_from_slice(m),
+        _ => family.start(y, offset, w, &mut mu),
+    }
     let mut eta: Vec<f64> = mu.iter().map(|&m| family.link(m)).collect();
     let mut ww = vec![0.0; n];
     let mut z = vec![0.0; n];
@@ -212,6 +220,7 @@ pub(crate) fn irls<F: Family>(
     }
     Some(IrlsRun {
         beta,
+        deviance,
         stalled,
         eta,
         mu,

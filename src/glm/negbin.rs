@@ -465,7 +465,7 @@ fn approach(
             break;
         }
         let family = NegativeBinomial { alpha, warm: Some(&mu) };
-        let Some(run) = irls(&family, &standard.x, n, &active, input.y, offset, w, opts) else {
+        let Some(run) = irls(&family, &standard.x, n, &active, input.y, offset, w, opts, None) else {
             break;
         };
         if run.stalled || run.mu.iter().any(|m| !m.is_finite()) {

@@ -15,7 +15,7 @@ use crate::glm::design::full_coded_factor;
 use crate::glm::fit_negative_binomial;
 use crate::glm::inference::coefficient_covariance;
 use crate::glm::negbin::loglik_at_means;
-use crate::glm::profile::profile_interval;
+use crate::glm::profile::{FunctionRefit, IrlsRefit, profile_interval};
 use crate::glm::{
     Design, DesignSpec, FactorColumn, FamilyKind, FitInput, Gaussian, GlmFit, Poisson, Predictor, PredictorValues, fit,
     term_table,
@@ -255,24 +255,20 @@ fn profile_terms(data: &GroupData<'_>, design: &Design, fitted: &GlmFit, terms: 
     };
     let exec = |e: crate::glm::FitError| DataFusionError::Execution(format!("{}: {e}", spec.kind.sql_name()));
     let negative_binomial = spec.family() == FamilyKind::NegativeBinomial;
-    let refit = move |d: &Design, i: FitInput<'_>| -> std::result::Result<Option<f64>, crate::glm::FitError> {
+    // Full refits: negative binomial (alpha re-estimated), and Poisson fits with a term at the
+    // boundary (the refits need the boundary handling of a full fit). Other Poisson refits are
+    // bare, warm-started IRLS.
+    let full_refit = |d: &Design, i: FitInput<'_>| -> std::result::Result<Option<f64>, crate::glm::FitError> {
         let means = || -> Vec<f64> {
             i.offset
                 .map_or_else(|| vec![1.0; i.y.len()], |o| o.iter().map(|v| v.exp()).collect())
         };
-        if d.n_columns() == 0 {
-            return Ok(Some(if negative_binomial {
-                loglik_at_means(i.y, &means(), i.weights)
-            } else {
-                Poisson.log_likelihood(i.y, &means(), &vec![1.0; i.y.len()])
-            }));
-        }
-        let f = if negative_binomial {
-            fit_negative_binomial(d, i, options)?
-        } else {
-            fit(&Poisson, d, i, options)?
-        };
-        Ok(f.stats.loglik)
+        Ok(match (d.n_columns(), negative_binomial) {
+            (0, true) => Some(loglik_at_means(i.y, &means(), i.weights)),
+            (0, false) => Some(Poisson.log_likelihood(i.y, &means(), &vec![1.0; i.y.len()])),
+            (_, true) => fit_negative_binomial(d, i, options)?.stats.loglik,
+            (_, false) => fit(&Poisson, d, i, options)?.stats.loglik,
+        })
     };
     // The fit the profile starts from, on the same level (rows or patterns) as the refits.
     let pattern_fit;
@@ -292,7 +288,14 @@ fn profile_terms(data: &GroupData<'_>, design: &Design, fitted: &GlmFit, terms: 
         if !matches!(base.states[j], TermState::Estimated | TermState::Boundary) || !dispersion.is_finite() {
             continue;
         }
-        let limits = profile_interval(&refit, design, input, base, j, spec.settings.level, dispersion).map_err(exec)?;
+        let limits = if negative_binomial || base.states.contains(&TermState::Boundary) {
+            let mut model = FunctionRefit::new(design, input, j, full_refit).map_err(exec)?;
+            profile_interval(&mut model, base, j, spec.settings.level, dispersion)
+        } else {
+            let mut model = IrlsRefit::new(&Poisson, design, input, base, j, options).map_err(exec)?;
+            profile_interval(&mut model, base, j, spec.settings.level, dispersion)
+        }
+        .map_err(exec)?;
         (t.ci_low, t.ci_high) = (limits.low, limits.high);
         (t.rr_low, t.rr_high) = (limits.low.map(f64::exp), limits.high.map(f64::exp));
         if base.states[j] == TermState::Boundary {
