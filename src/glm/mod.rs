@@ -11,7 +11,8 @@
 //! * [`inference`]: coefficient tables (model, quasi, HC0, HC1) and model tests;
 //! * [`distributions`]: tail probabilities and quantiles (normal, t, chi-square, F);
 //! * [`collapse`]: Poisson fits on merged covariate patterns with row-level statistics;
-//! * [`closed_form`]: exact single-rate intervals and two-rate comparisons.
+//! * [`closed_form`]: exact single-rate intervals and two-rate comparisons;
+//! * [`standardize`]: direct (gamma intervals) and indirect (observed/expected) standardisation.
 
 pub mod closed_form;
 pub mod collapse;
@@ -26,6 +27,7 @@ pub mod negbin;
 mod overdispersion;
 pub mod profile;
 mod solve;
+pub mod standardize;
 
 pub use design::{
     ColumnKind, Design, DesignSpec, FactorColumn, MAX_DESIGN_COLUMNS, OwnedFactor, Predictor, PredictorValues,

@@ -8,6 +8,7 @@
 
 pub mod functions;
 pub mod model;
+pub mod standardize;
 pub mod unnest_keys;
 
 use datafusion::error::Result;
@@ -26,6 +27,8 @@ pub fn aggregate_functions() -> Vec<AggregateUDF> {
         functions::linear_fit::linear_fit(),
         functions::negbin_fit::negbin_fit(),
         functions::negbin_count_fit::negbin_count_fit(),
+        functions::standardized_rate::standardized_rate(),
+        functions::standardized_ratio::standardized_ratio(),
     ]
 }
 
@@ -38,6 +41,7 @@ pub fn scalar_functions() -> Vec<ScalarUDF> {
         functions::fit_comparison::fit_lr_test(),
         functions::rate_interval::rate_interval(),
         functions::rate_comparison::rate_ratio_test(),
+        functions::standardized_rate_ratio::standardized_rate_ratio(),
         functions::interaction::interaction(),
     ]
 }

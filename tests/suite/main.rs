@@ -15,4 +15,5 @@ mod soak;
 mod sql_engine;
 mod sql_examples;
 mod sql_smoke;
+mod sql_standardize;
 mod support;

@@ -221,7 +221,7 @@ impl FitSettings {
     /// A key given in the call wins, so a session default never breaks a call that overrides
     /// it. `function` names the SQL function in error messages.
     pub fn resolve(config: &ConfigOptions, options: &str, function: &str) -> Result<FitSettings> {
-        let given = parse_pairs(options, function)?;
+        let given = parse_pairs(options, function, OPTION_KEYS)?;
         let mut settings = FitSettings::builtin();
         if let Some(session) = config.extensions.get::<RatesheetConfig>() {
             for (key, _) in SESSION_KEYS {
@@ -240,7 +240,7 @@ impl FitSettings {
     /// Applies an options string on top of these settings. `function` names the SQL function in
     /// error messages.
     pub fn apply_string(&mut self, options: &str, function: &str) -> Result<()> {
-        for (key, value) in parse_pairs(options, function)? {
+        for (key, value) in parse_pairs(options, function, OPTION_KEYS)? {
             self.apply(&key, &value, function)?;
         }
         Ok(())
@@ -335,8 +335,9 @@ impl FitSettings {
     }
 }
 
-/// The `key=value` pairs of an options string, in order.
-fn parse_pairs(options: &str, function: &str) -> Result<Vec<(String, String)>> {
+/// The `key=value` pairs of an options string, in order; `keys` (the valid ones) are listed
+/// when an item is not a pair.
+pub(crate) fn parse_pairs(options: &str, function: &str, keys: &[&str]) -> Result<Vec<(String, String)>> {
     options
         .split(',')
         .map(str::trim)
@@ -345,7 +346,7 @@ fn parse_pairs(options: &str, function: &str) -> Result<Vec<(String, String)>> {
             Some((key, value)) => Ok((key.trim().to_string(), value.trim().to_string())),
             None => Err(plan_error(format!(
                 "{function}: option '{item}' is not of the form key=value; valid keys: {}",
-                OPTION_KEYS.join(", ")
+                keys.join(", ")
             ))),
         })
         .collect()
