@@ -343,6 +343,12 @@ def documentation_examples():
         "linear_fit": {"call": "sm.OLS(log(breaks + 1), [1, age]).fit().params['age']", "value": float(ols.params["age"])},
         "rate_ratio_test": {"call": "scipy.stats.binomtest(32, 34, 52407/(52407+18790)).pvalue", "value": float(stats.binomtest(32, 34, 52407 / (52407 + 18790)).pvalue)},
         "rate_interval": {"call": "scipy.stats.chi2.ppf(0.975, 2*(5+1)) / 2 / 1000 (Garwood upper limit)", "value": float(stats.chi2.ppf(0.975, 12) / 2 / 1000)},
+        "standardized_rate": {"call": "1000 x high of direct_rate([3, 9], [1200, 800], [0.6, 0.4], 0.95, 'fay_feuer')", "value": 1000 * direct_rate([3, 9], [1200, 800], [0.6, 0.4], 0.95, "fay_feuer")["high"]},
+        "standardized_ratio": {"call": "p_value of indirect_ratio(12, 1200*0.002 + 800*0.01, 0.95)", "value": indirect_ratio(12.0, 1200 * 0.002 + 800 * 0.01, 0.95)["p_value"]},
+        "standardized_rate_ratio": {
+            "call": "high of direct_ratio(north, south) with north = direct_rate([3, 9], [1200, 800], [0.6, 0.4]), south = direct_rate([1, 12], [400, 1500], [0.6, 0.4])",
+            "value": direct_ratio(direct_rate([3, 9], [1200, 800], [0.6, 0.4], 0.95, "fay_feuer"), direct_rate([1, 12], [400, 1500], [0.6, 0.4], 0.95, "fay_feuer"), 0.95)["high"],
+        },
     }
 
 

@@ -450,7 +450,7 @@ async fn every_documentation_example_returns_its_reference_value() {
             .unwrap_or_else(|| panic!("{} has no documentation", udaf.name()));
         docs.push((udaf.name().to_string(), doc.sql_example.clone()));
     }
-    assert_eq!(docs.len(), 12);
+    assert_eq!(docs.len(), 15);
     for (name, sql) in docs {
         let sql = sql.unwrap_or_else(|| panic!("{name} has no SQL example"));
         let batches = collect(&ctx, &sql).await;

@@ -22,9 +22,10 @@ static DOC: LazyLock<Documentation> = LazyLock::new(|| {
          band or one material and decade) with its events, exposure and the standard population's weight. \
          Weights are normalised over the group's rows, rate = sum of w_j * events_j / exposure_j. Returns \
          {rate, low, high, crude_rate, events, exposure, n_strata, method, std_error, shift_mean, \
-         shift_variance, per, level, n_skipped, n_invalid, status}; the interval is the Fay-Feuer (1997) \
+         shift_variance, weight_total, per, level, n_skipped, n_invalid, status}; the interval is the Fay-Feuer (1997) \
          gamma interval, or with method=tiwari the Tiwari-Clegg-Zou (2006) one. A stratum must appear once \
-         per group; compare n_strata across groups to see strata missing in a group.",
+         per group; a group missing strata is normalised over the strata it has: compare n_strata and \
+         weight_total (the group's sum of standard weights) across groups to see it.",
         "standardized_rate(events, exposure, standard_weight [, 'options'])",
     )
     .with_argument("events", "Events in the stratum (>= 0).")
@@ -42,10 +43,8 @@ static DOC: LazyLock<Documentation> = LazyLock::new(|| {
          method (fay_feuer|tiwari), invalid (error|skip).",
     )
     .with_sql_example(
-        "SELECT area, standardized_rate(events, exposure, standard, 'per=1000')['rate'] AS rate_per_1000\n\
-         FROM (VALUES ('north', 3, 1200.0, 0.6), ('north', 9, 800.0, 0.4),\n\
-                      ('south', 1, 400.0, 0.6), ('south', 12, 1500.0, 0.4)) AS t(area, events, exposure, standard)\n\
-         GROUP BY area ORDER BY area;",
+        "SELECT standardized_rate(events, exposure, standard, 'per=1000')['high'] AS upper_per_1000\n\
+         FROM (VALUES (3, 1200.0, 0.6), (9, 800.0, 0.4)) AS t(events, exposure, standard);",
     )
     .build()
 });

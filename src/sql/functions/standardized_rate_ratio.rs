@@ -228,7 +228,7 @@ static DOC: LazyLock<Documentation> = LazyLock::new(|| {
            FROM (VALUES ('north', 3, 1200.0, 0.6), ('north', 9, 800.0, 0.4),\n\
                         ('south', 1, 400.0, 0.6), ('south', 12, 1500.0, 0.4)) AS t(area, events, exposure, standard)\n\
            GROUP BY area)\n\
-         SELECT standardized_rate_ratio(n.dsr, s.dsr)['ratio'] AS north_vs_south\n\
+         SELECT standardized_rate_ratio(n.dsr, s.dsr)['high'] AS upper_north_vs_south\n\
          FROM r AS n, r AS s WHERE n.area = 'north' AND s.area = 'south';",
     )
     .build()

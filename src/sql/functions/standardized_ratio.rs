@@ -31,13 +31,17 @@ static DOC: LazyLock<Documentation> = LazyLock::new(|| {
     )
     .with_argument("events", "Observed events (>= 0).")
     .with_argument("exposure", "Exposure (> 0); omit it and give expected counts instead.")
-    .with_argument("reference_rate", "The reference (standard) rate for the row's stratum (>= 0).")
-    .with_argument("options", "Optional literal 'key=value, ...': level, invalid (error|skip).")
+    .with_argument(
+        "reference_rate",
+        "The reference (standard) rate for the row's stratum (>= 0).",
+    )
+    .with_argument(
+        "options",
+        "Optional literal 'key=value, ...': level, invalid (error|skip).",
+    )
     .with_sql_example(
-        "SELECT area, standardized_ratio(events, exposure, reference)['ratio'] AS smr\n\
-         FROM (VALUES ('north', 3, 1200.0, 0.002), ('north', 9, 800.0, 0.01),\n\
-                      ('south', 1, 400.0, 0.002), ('south', 12, 1500.0, 0.01)) AS t(area, events, exposure, reference)\n\
-         GROUP BY area ORDER BY area;",
+        "SELECT standardized_ratio(events, exposure, reference)['p_value'] AS p\n\
+         FROM (VALUES (3, 1200.0, 0.002), (9, 800.0, 0.01)) AS t(events, exposure, reference);",
     )
     .build()
 });

@@ -4,7 +4,9 @@
 //!
 //! Result fields, in order: `rate, low, high, crude_rate, events, exposure, n_strata, method`,
 //! then `std_error` (sqrt v), `shift_mean` and `shift_variance` (the upper limit's shift, which
-//! `standardized_rate_ratio` needs), `per`, `level`, `n_skipped`, `n_invalid`, `status`.
+//! `standardized_rate_ratio` needs), `weight_total` (the group's Σ standard_weight before
+//! normalising: smaller than the standard's total when strata are missing), `per`, `level`,
+//! `n_skipped`, `n_invalid`, `status`.
 //! Rates, limits, the standard error and the shifts are per `per` units of exposure.
 
 use datafusion::arrow::array::StructArray;
@@ -31,6 +33,7 @@ pub fn fields() -> Vec<(&'static str, DataType)> {
         ("std_error", F),
         ("shift_mean", F),
         ("shift_variance", F),
+        ("weight_total", F),
         ("per", F),
         ("level", F),
         ("n_skipped", U),
@@ -113,7 +116,7 @@ impl Tally for StrataSums {
 
     fn results(groups: &[Group<Self>], s: &StandardizeSettings) -> StructArray {
         let n = groups.len();
-        let mut num: Vec<Vec<Option<f64>>> = vec![Vec::with_capacity(n); 11];
+        let mut num: Vec<Vec<Option<f64>>> = vec![Vec::with_capacity(n); 12];
         let (mut strata, mut skipped, mut invalid) = (Vec::new(), Vec::new(), Vec::new());
         let (mut method, mut status) = (Vec::new(), Vec::new());
         for g in groups {
@@ -131,6 +134,7 @@ impl Tally for StrataSums {
                 moments.map(|m| m.variance.sqrt()),
                 moments.map(|m| m.shift_mean),
                 moments.map(|m| m.shift_variance),
+                has_strata.then_some(t.weight),
                 Some(s.per),
                 Some(s.level),
             ];
@@ -150,7 +154,7 @@ impl Tally for StrataSums {
             }));
         }
         let mut num = num.into_iter().map(Column::Float);
-        let mut next = || num.next().expect("eleven number columns");
+        let mut next = || num.next().expect("twelve number columns");
         build_struct(vec![
             ("rate", next()),
             ("low", next()),
@@ -163,6 +167,7 @@ impl Tally for StrataSums {
             ("std_error", next()),
             ("shift_mean", next()),
             ("shift_variance", next()),
+            ("weight_total", next()),
             ("per", next()),
             ("level", next()),
             ("n_skipped", Column::Count(skipped)),

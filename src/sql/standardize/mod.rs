@@ -79,6 +79,10 @@ impl<T: Tally> StandardizeFunction<T> {
         });
         match text {
             Some(t) => Ok((StandardizeSettings::parse(&t, self.kind)?, args.exprs.len() - 1)),
+            None if args.expr_fields.last().is_some_and(|f| is_text(f.data_type())) => Err(plan(format!(
+                "{}: the options must be a constant string such as 'level=0.9'",
+                self.kind.sql_name()
+            ))),
             None => Ok((StandardizeSettings::builtin(), args.exprs.len())),
         }
     }
