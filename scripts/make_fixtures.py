@@ -503,6 +503,20 @@ def standardization_blocks(br, mm):
     return out
 
 
+def funnel_limits():
+    """Funnel-plot control limits for O/E (Spiegelhalter 2005, interpolation as described in
+    src/glm/standardize.rs): r = poisson.ppf(p, E); a = (F(r) - p) / (F(r) - F(r - 1));
+    limit = (r - a) / E, with F = scipy.stats.poisson.cdf."""
+    cases = []
+    for e in [0.5, 3.7, 12.0, 150.3, 1164.17]:
+        for p in [0.001, 0.025, 0.975, 0.999]:
+            r = float(stats.poisson.ppf(p, e))
+            fr, fb = stats.poisson.cdf(r, e), stats.poisson.cdf(r - 1, e)
+            a = (fr - p) / (fr - fb)
+            cases.append({"expected": e, "p": p, "quantile": r, "limit": float((r - a) / e)})
+    return {"call": "scipy.stats.poisson.ppf / cdf; limit = (r - (F(r) - p) / (F(r) - F(r-1))) / E", "cases": cases}
+
+
 def main():
     out = {
         "generated_with": {
@@ -674,6 +688,7 @@ def main():
     mm = load("mlmRev", "Mmmec")
     mm.to_csv(ROOT / "tests" / "fixtures" / "reference" / "data" / "mmmec.csv", index=False)
     out["standardization"] = standardization_blocks(br, mm)
+    out["funnel_limits"] = funnel_limits()
 
     OUT.write_text(json.dumps(out, indent=1) + "\n")
     print(f"wrote {OUT}")

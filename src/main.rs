@@ -58,9 +58,13 @@ struct Args {
     /// Also write the last statement's result to FILE (.csv, .json, .parquet or .xlsx).
     #[arg(long, value_name = "FILE")]
     save_to: Option<String>,
-    /// Let --save-to overwrite an existing file.
-    #[arg(long, requires = "save_to")]
+    /// Let --save-to and --draw-to overwrite an existing file.
+    #[arg(long)]
     replace: bool,
+    /// Also draw the last statement's result to FILE (.svg or .png): a funnel plot when it has
+    /// observed and expected counts, otherwise a forest plot of its estimates and intervals.
+    #[arg(long, value_name = "FILE")]
+    draw_to: Option<String>,
 }
 
 fn parse_bytes(s: &str) -> Result<usize, String> {
@@ -118,6 +122,10 @@ async fn main() -> ExitCode {
     let interactive = args.execute.is_none() && args.script.is_none();
     if interactive && args.save_to.is_some() {
         eprintln!("error: --save-to needs statements to run (-e SQL or --script FILE); in the shell use ~save");
+        return ExitCode::from(2);
+    }
+    if interactive && args.draw_to.is_some() {
+        eprintln!("error: --draw-to needs statements to run (-e SQL or --script FILE); in the shell use ~draw");
         return ExitCode::from(2);
     }
     for p in &args.paths {
@@ -185,6 +193,16 @@ async fn main() -> ExitCode {
             }
         }
     }
+    if let Some(path) = &args.draw_to {
+        let request = ratesheet::cli::picture::Request::default();
+        match ratesheet::cli::picture::Picture::of(&last, &request).and_then(|p| p.write(path, args.replace)) {
+            Ok(line) => eprintln!("{line}"),
+            Err(e) => {
+                eprintln!("error: --draw-to {path}: {e}");
+                return ExitCode::FAILURE;
+            }
+        }
+    }
     ExitCode::SUCCESS
 }
 
@@ -230,13 +248,35 @@ async fn run_demo(ctx: &datafusion::prelude::SessionContext, digits: usize, hint
         }
         println!("» {}", narration.join("\n  "));
         println!("  {}\n", sql.trim().replace('\n', "\n  "));
+        let mut last = Vec::new();
         for statement in statements(&sql) {
             let progress = std::io::stderr().is_terminal();
-            match collect_with_progress(ctx, &statement, progress, hints)
-                .await
-                .and_then(|b| render(&b, &style))
+            match collect_with_progress(ctx, &statement, progress, hints).await {
+                Ok(batches) => match render(&batches, &style) {
+                    Ok(out) => {
+                        println!("{out}");
+                        last = batches;
+                    }
+                    Err(e) => {
+                        eprintln!("error: {e}");
+                        return ExitCode::FAILURE;
+                    }
+                },
+                Err(e) => {
+                    eprintln!("error: {e}");
+                    return ExitCode::FAILURE;
+                }
+            }
+        }
+        // A line `--> draw ...` asks for a picture of the block's last result.
+        for directive in block.lines().filter_map(|l| l.strip_prefix("--> draw")) {
+            let words: Vec<String> = directive.split_whitespace().map(str::to_string).collect();
+            let glyphs = ratesheet::cli::picture::Glyphs::for_stdout();
+            let width = style.width.unwrap_or(100);
+            match ratesheet::cli::picture::Request::parse(&words)
+                .and_then(|r| ratesheet::cli::picture::Picture::of(&last, &r))
             {
-                Ok(out) => println!("{out}"),
+                Ok(p) => println!("{}\n", p.text(width, &glyphs)),
                 Err(e) => {
                     eprintln!("error: {e}");
                     return ExitCode::FAILURE;

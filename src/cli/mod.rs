@@ -6,6 +6,7 @@
 pub mod guard;
 pub mod hints;
 pub mod output;
+pub mod picture;
 pub mod progress;
 pub mod session;
 pub mod shell;

@@ -31,6 +31,7 @@ pub enum Action {
     Timing,
     Hints,
     Save,
+    Draw,
     Quit,
 }
 
@@ -97,6 +98,12 @@ pub const COMMANDS: &[Command] = &[
         args: "FILE [replace]",
         help: "write the last result to FILE (.csv, .json lines, .parquet, or .xlsx with fits one row per term); 'replace' overwrites",
         action: Action::Save,
+    },
+    Command {
+        name: "draw",
+        args: "[forest|funnel] [LABEL COLUMN...] [FILE.svg|.png] [level=L] [widen]",
+        help: "draw the last result: rate ratios as a forest plot, observed/expected as a funnel plot; in the terminal, or to a file",
+        action: Action::Draw,
     },
     Command {
         name: "quit",
@@ -430,6 +437,23 @@ impl Shell {
                 },
                 None => eprintln!("usage: {PREFIX}save FILE [replace]"),
             },
+            Action::Draw => {
+                let words: Vec<String> = args.iter().map(|w| w.to_string()).collect();
+                let drawn = crate::cli::picture::Request::parse(&words).and_then(|request| {
+                    let picture = crate::cli::picture::Picture::of(&self.last, &request)?;
+                    match &request.file {
+                        Some(path) => picture.write(path, true),
+                        None => {
+                            let glyphs = crate::cli::picture::Glyphs::for_stdout();
+                            Ok(picture.text(self.style.width.unwrap_or(100), &glyphs))
+                        }
+                    }
+                });
+                match drawn {
+                    Ok(text) => println!("{}", text.trim_end()),
+                    Err(e) => eprintln!("error: {e}"),
+                }
+            }
         }
         true
     }

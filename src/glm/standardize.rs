@@ -241,11 +241,65 @@ pub fn indirect_ratio(observed: f64, expected: f64, level: f64) -> IndirectRatio
 }
 
 /// min(1, 2·min(P(X ≤ o), P(X ≥ o))) for X ~ Poisson(mean), o a whole number >= 0.
-/// P(X ≤ o) = Q(o+1, mean) and P(X ≥ o) = P(o, mean), the regularised incomplete gammas.
 pub fn poisson_two_sided(o: f64, mean: f64) -> f64 {
-    let at_most = gamma_ur(o + 1.0, mean);
-    let at_least = if o == 0.0 { 1.0 } else { gamma_lr(o, mean) };
-    (2.0 * at_most.min(at_least)).min(1.0)
+    (2.0 * poisson_at_most(o, mean).min(poisson_at_least(o, mean))).min(1.0)
+}
+
+/// P(X ≤ k) for X ~ Poisson(mean), k whole: Q(k+1, mean), the regularised upper incomplete
+/// gamma (0 for k < 0). With [`poisson_at_least`], the Poisson tails behind both the exact
+/// p-value and the funnel limits.
+pub fn poisson_at_most(k: f64, mean: f64) -> f64 {
+    if k < 0.0 { 0.0 } else { gamma_ur(k + 1.0, mean) }
+}
+
+/// P(X ≥ k) = 1 - P(X ≤ k-1) for X ~ Poisson(mean), k whole: P(k, mean), the regularised
+/// lower incomplete gamma (computed directly, so small upper tails keep their digits).
+pub fn poisson_at_least(k: f64, mean: f64) -> f64 {
+    if k <= 0.0 { 1.0 } else { gamma_lr(k, mean) }
+}
+
+/// The funnel plot's control limit for an observed/expected ratio at tail probability `p`
+/// (for example 0.025 or 0.975) when E = `expected`: the p-quantile r of Poisson(E) (the
+/// smallest whole r with P(X ≤ r) ≥ p), moved down by the interpolation
+/// a = (P(X ≤ r) - p) / (P(X = r)) so that the limit is continuous in E, divided by E:
+/// (r - a) / E. Spiegelhalter (2005, Statistics in Medicine 24:1185-1202; from memory).
+pub fn funnel_limit(expected: f64, p: f64) -> f64 {
+    // Start near the normal approximation and walk to the quantile.
+    let z = super::distributions::normal_quantile(p);
+    let mut r = (expected + z * expected.sqrt()).floor().max(0.0);
+    while r > 0.0 && poisson_at_most(r - 1.0, expected) >= p {
+        r -= 1.0;
+    }
+    while poisson_at_most(r, expected) < p {
+        r += 1.0;
+    }
+    let at_r = poisson_at_most(r, expected);
+    let below = poisson_at_most(r - 1.0, expected);
+    let a = (at_r - p) / (at_r - below);
+    (r - a) / expected
+}
+
+/// The multiplicative overdispersion factor of a funnel plot: φ = mean of the squared
+/// z-scores z = (O - E) / sqrt(E), with the z-scores Winsorised at their 10th and 90th
+/// percentiles (Spiegelhalter 2005; the 10% is that paper's suggestion, from memory).
+/// Limits widen as 1 + (limit - 1)·sqrt(φ) when φ > 1; `None` with fewer than 3 areas.
+pub fn funnel_overdispersion(points: &[(f64, f64)]) -> Option<f64> {
+    let mut z: Vec<f64> = points
+        .iter()
+        .filter(|(_, e)| *e > 0.0)
+        .map(|(o, e)| (o - e) / e.sqrt())
+        .collect();
+    if z.len() < 3 {
+        return None;
+    }
+    let mut sorted = z.clone();
+    sorted.sort_by(f64::total_cmp);
+    let at = |q: f64| sorted[((q * (sorted.len() - 1) as f64).round()) as usize];
+    let (low, high) = (at(0.1), at(0.9));
+    for v in &mut z {
+        *v = v.clamp(low, high);
+    }
+    Some(z.iter().map(|v| v * v).sum::<f64>() / z.len() as f64)
 }
 
 /// Quantile of F(d1, d2) at p, through Beta(d1/2, d2/2): F = d2·B / (d1·(1 - B)).
