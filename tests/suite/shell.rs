@@ -118,7 +118,8 @@ fn save_writes_the_last_result_and_never_overwrites_unasked() {
     std::fs::remove_dir_all(&home).ok();
 }
 
-/// XLSX output flattens fits to one row per (group, term); the workbook holds the term names.
+/// XLSX output flattens fits to one row per (group, term); the workbook holds the term names
+/// and the fit's scalar fields as `fit_<field>`; CSV holds the same rows.
 #[tokio::test]
 async fn xlsx_results_have_one_row_per_group_and_term() {
     let ctx = datafusion::prelude::SessionContext::new();
@@ -136,8 +137,9 @@ async fn xlsx_results_have_one_row_per_group_and_term() {
         .unwrap();
     let home = temp_home("xlsx");
     let target = home.join("fits.xlsx");
+    // The rows written are reported: 10 districts x 5 terms.
     let rows = ratesheet::cli::output::save_batches(&batches, target.to_str().unwrap(), false, "").unwrap();
-    assert_eq!(rows, 10);
+    assert_eq!(rows, 50);
     let mut archive = zip::ZipArchive::new(std::fs::File::open(&target).unwrap()).unwrap();
     let mut sheet = String::new();
     std::io::Read::read_to_string(&mut archive.by_name("xl/worksheets/sheet1.xml").unwrap(), &mut sheet).unwrap();
@@ -151,10 +153,59 @@ async fn xlsx_results_have_one_row_per_group_and_term() {
     let mut strings = String::new();
     std::io::Read::read_to_string(&mut archive.by_name("xl/sharedStrings.xml").unwrap(), &mut strings).unwrap();
     assert!(
-        strings.contains("material=steel") && strings.contains("fit.rate_ratio"),
+        strings.contains("material=steel") && strings.contains("rate_ratio") && strings.contains("fit_dispersion"),
         "{strings}"
     );
     std::fs::remove_dir_all(&home).ok();
+}
+
+/// CSV is flat: a fit becomes one row per (group, term) with a `term` column and the fit's
+/// scalar fields as `fit_<field>`; another struct becomes one column per field. JSON keeps the
+/// nesting: every line is a JSON object whose fit holds its terms as an array.
+#[tokio::test]
+async fn csv_is_flat_and_json_is_nested() {
+    use ratesheet::cli::output::{Format, Style, render};
+    let ctx = datafusion::prelude::SessionContext::new();
+    ratesheet::register_functions(&ctx).unwrap();
+    let path = concat!(env!("CARGO_MANIFEST_DIR"), "/demo-parquet/pipe_breaks.parquet");
+    ctx.register_parquet("pipe_breaks", path, Default::default())
+        .await
+        .unwrap();
+    let batches = ctx
+        .sql(
+            "SELECT district, poisson_fit(breaks, km_years, material) AS fit, rate_interval(SUM(breaks), SUM(km_years)) AS r \
+             FROM pipe_breaks GROUP BY district ORDER BY district",
+        )
+        .await
+        .unwrap()
+        .collect()
+        .await
+        .unwrap();
+    let style = |format| Style {
+        format,
+        digits: 17,
+        max_rows: usize::MAX,
+        width: None,
+    };
+    let csv = render(&batches, &style(Format::Csv)).unwrap();
+    let mut lines = csv.lines();
+    let header: Vec<&str> = lines.next().unwrap().split(',').collect();
+    for name in ["district", "fit_status", "fit_dispersion", "term", "estimate", "rate_ratio", "r_rate", "r_low", "r_high"] {
+        assert!(header.contains(&name), "{name} missing from {header:?}");
+    }
+    assert!(!header.contains(&"fit"), "the fit is not one cell");
+    let rows: Vec<&str> = lines.collect();
+    assert_eq!(rows.len(), 10 * 5);
+    assert!(rows[0].starts_with("East Meadows,ok,poisson,"), "{}", rows[0]);
+    assert!(rows.iter().all(|r| !r.contains('{')), "no struct text left");
+    let json = render(&batches, &style(Format::Json)).unwrap();
+    let objects: Vec<serde_json::Value> = json.lines().map(|l| serde_json::from_str(l).unwrap()).collect();
+    assert_eq!(objects.len(), 10);
+    assert_eq!(objects[0]["fit"]["terms"].as_array().unwrap().len(), 5);
+    assert_eq!(objects[0]["fit"]["terms"][1]["term"], "material=cast_iron");
+    assert!(objects[0]["r"]["low"].as_f64().unwrap() > 0.0);
+    // NULLs are written as null, not left out.
+    assert!(objects[0]["fit"].as_object().unwrap().contains_key("f_stat"));
 }
 
 /// A statement running longer than a second shows a progress line on the terminal's stderr

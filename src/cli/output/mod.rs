@@ -4,6 +4,7 @@
 
 use datafusion::arrow::array::RecordBatch;
 
+pub mod flat;
 pub mod render;
 pub mod spreadsheet;
 
@@ -11,7 +12,8 @@ pub use render::{Format, Style, format_number, format_p, render, terminal_width}
 
 /// Writes batches to `path` (format from the extension) through a temporary file renamed into
 /// place; refuses to overwrite an existing file unless `replace` (`how_to_replace` tells the
-/// user how to ask).
+/// user how to ask). Returns the number of data rows written (CSV and XLSX are flattened, so
+/// a fit gives one row per term).
 pub fn save_batches(
     batches: &[RecordBatch],
     path: &str,
@@ -31,8 +33,9 @@ pub fn save_batches(
         .unwrap_or("")
         .to_ascii_lowercase();
     let tmp = target.with_extension(format!("{ext}.partial"));
-    let write = || -> std::result::Result<(), Box<dyn std::error::Error>> {
+    let write = || -> std::result::Result<usize, Box<dyn std::error::Error>> {
         let file = std::fs::File::create(&tmp)?;
+        let mut written: usize = batches.iter().map(RecordBatch::num_rows).sum();
         match ext.as_str() {
             "parquet" => {
                 let mut w = datafusion::parquet::arrow::ArrowWriter::try_new(file, first.schema(), None)?;
@@ -52,18 +55,21 @@ pub fn save_batches(
                 let mut file = file;
                 file.write_all(render(batches, &style)?.as_bytes())?;
                 file.sync_all()?;
+                if ext == "csv" {
+                    written = flat::flatten_all(batches)?.iter().map(RecordBatch::num_rows).sum();
+                }
             }
             "xlsx" => {
                 drop(file);
-                spreadsheet::write_xlsx(batches, &tmp)?;
+                written = spreadsheet::write_xlsx(batches, &tmp)?;
             }
             other => return Err(format!("cannot save as '.{other}': use .csv, .json, .parquet or .xlsx").into()),
         }
         std::fs::rename(&tmp, target)?;
-        Ok(())
+        Ok(written)
     };
     match write() {
-        Ok(()) => Ok(batches.iter().map(RecordBatch::num_rows).sum()),
+        Ok(rows) => Ok(rows),
         Err(e) => {
             let _ = std::fs::remove_file(&tmp);
             Err(format!("{path}: {e}"))

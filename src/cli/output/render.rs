@@ -49,8 +49,8 @@ pub fn render(batches: &[RecordBatch], style: &Style) -> Result<String> {
                 let mut w = datafusion::arrow::csv::WriterBuilder::new()
                     .with_header(true)
                     .build(&mut out);
-                for b in batches {
-                    w.write(&flatten_structs(b)?)?;
+                for b in super::flat::flatten_all(batches)? {
+                    w.write(&b)?;
                 }
             }
             Ok(String::from_utf8_lossy(&out).into_owned())
@@ -58,7 +58,9 @@ pub fn render(batches: &[RecordBatch], style: &Style) -> Result<String> {
         Format::Json => {
             let mut out = Vec::new();
             {
-                let mut w = datafusion::arrow::json::LineDelimitedWriter::new(&mut out);
+                let mut w = datafusion::arrow::json::WriterBuilder::new()
+                    .with_explicit_nulls(true)
+                    .build::<_, datafusion::arrow::json::writer::LineDelimited>(&mut out);
                 for b in batches {
                     w.write(b)?;
                 }
@@ -68,30 +70,6 @@ pub fn render(batches: &[RecordBatch], style: &Style) -> Result<String> {
         }
         Format::Table | Format::Markdown => text_table(batches, style),
     }
-}
-
-/// CSV has no nested values: struct columns become their JSON text.
-fn flatten_structs(b: &RecordBatch) -> Result<RecordBatch> {
-    let mut fields = Vec::new();
-    let mut columns: Vec<ArrayRef> = Vec::new();
-    for (f, c) in b.schema().fields().iter().zip(b.columns()) {
-        if matches!(c.data_type(), DataType::Struct(_) | DataType::List(_)) {
-            let options = FormatOptions::default();
-            let fmt = ArrayFormatter::try_new(c.as_ref(), &options)?;
-            let text: datafusion::arrow::array::StringArray = (0..c.len())
-                .map(|r| (!c.is_null(r)).then(|| fmt.value(r).to_string()))
-                .collect();
-            fields.push(datafusion::arrow::datatypes::Field::new(f.name(), DataType::Utf8, true));
-            columns.push(std::sync::Arc::new(text));
-        } else {
-            fields.push(f.as_ref().clone());
-            columns.push(c.clone());
-        }
-    }
-    Ok(RecordBatch::try_new(
-        std::sync::Arc::new(datafusion::arrow::datatypes::Schema::new(fields)),
-        columns,
-    )?)
 }
 
 fn is_p_value(name: &str) -> bool {
