@@ -190,7 +190,17 @@ async fn csv_is_flat_and_json_is_nested() {
     let csv = render(&batches, &style(Format::Csv)).unwrap();
     let mut lines = csv.lines();
     let header: Vec<&str> = lines.next().unwrap().split(',').collect();
-    for name in ["district", "fit_status", "fit_dispersion", "term", "estimate", "rate_ratio", "r_rate", "r_low", "r_high"] {
+    for name in [
+        "district",
+        "fit_status",
+        "fit_dispersion",
+        "term",
+        "estimate",
+        "rate_ratio",
+        "r_rate",
+        "r_low",
+        "r_high",
+    ] {
         assert!(header.contains(&name), "{name} missing from {header:?}");
     }
     assert!(!header.contains(&"fit"), "the fit is not one cell");
@@ -206,6 +216,45 @@ async fn csv_is_flat_and_json_is_nested() {
     assert!(objects[0]["r"]["low"].as_f64().unwrap() > 0.0);
     // NULLs are written as null, not left out.
     assert!(objects[0]["fit"].as_object().unwrap().contains_key("f_stat"));
+}
+
+/// In the text table a struct result is spread into one column per field, formatted like any
+/// number (the digits setting applies), headers lose the engine's qualifiers where that is
+/// unambiguous, and the numbers of a column line up on their decimal points.
+#[tokio::test]
+async fn structs_spread_and_numbers_line_up_in_text_tables() {
+    use ratesheet::cli::output::{Format, Style, render};
+    let ctx = datafusion::prelude::SessionContext::new();
+    ratesheet::register_functions(&ctx).unwrap();
+    let style = Style {
+        format: Format::Table,
+        digits: 4,
+        max_rows: 100,
+        width: None,
+    };
+    let sql = "SELECT rate_interval(3, 100.0) AS r, rate_ratio_test(32, 52407, 2, 18790) AS t";
+    let text = render(&ctx.sql(sql).await.unwrap().collect().await.unwrap(), &style).unwrap();
+    let header: Vec<&str> = text.lines().next().unwrap().split_whitespace().collect();
+    assert_eq!(
+        header,
+        [
+            "rate", "r.low", "r.high", "ratio", "t.low", "t.high", "p_value", "method"
+        ],
+        "{text}"
+    );
+    assert!(
+        !text.contains('{') && text.contains("0.006187") && text.contains("5.737"),
+        "{text}"
+    );
+    let sql = "SELECT v FROM (VALUES (1.335), (1.3182), (1099.0), (0.000012), (-2.5)) AS t(v)";
+    let text = render(&ctx.sql(sql).await.unwrap().collect().await.unwrap(), &style).unwrap();
+    let points: Vec<Option<usize>> = text.lines().skip(2).map(|l| l.find('.')).collect();
+    assert!(points.iter().flatten().all(|p| Some(*p) == points[0]), "{text}");
+    let sql = "WITH f AS (SELECT poisson_fit(y, x) AS fit FROM (VALUES (1, 1.0), (3, 2.0), (4, 3.0)) AS t(y, x)) \
+               SELECT fit['dispersion'], fit['lr_p'] FROM f";
+    let text = render(&ctx.sql(sql).await.unwrap().collect().await.unwrap(), &style).unwrap();
+    let header: Vec<&str> = text.lines().next().unwrap().split_whitespace().collect();
+    assert_eq!(header, ["dispersion", "lr_p"], "{text}");
 }
 
 /// A statement running longer than a second shows a progress line on the terminal's stderr

@@ -22,17 +22,31 @@ fn is_fit(a: &ArrayRef) -> bool {
 fn as_text(a: &ArrayRef) -> Result<ArrayRef, ArrowError> {
     let options = FormatOptions::default();
     let fmt = ArrayFormatter::try_new(a.as_ref(), &options)?;
-    let text: StringArray = (0..a.len()).map(|r| (!a.is_null(r)).then(|| fmt.value(r).to_string())).collect();
+    let text: StringArray = (0..a.len())
+        .map(|r| (!a.is_null(r)).then(|| fmt.value(r).to_string()))
+        .collect();
     Ok(Arc::new(text))
 }
 
-/// Pushes column `a` named `name`, struct fields spread into `<name>_<field>` columns.
-fn push_spread(name: &str, a: &ArrayRef, fields: &mut Vec<Field>, columns: &mut Vec<ArrayRef>) -> Result<(), ArrowError> {
+/// Pushes column `a` named `name`, struct fields spread into `<name><sep><field>` columns.
+fn push_spread(
+    name: &str,
+    sep: &str,
+    a: &ArrayRef,
+    fields: &mut Vec<Field>,
+    columns: &mut Vec<ArrayRef>,
+) -> Result<(), ArrowError> {
     match a.data_type() {
         DataType::Struct(_) => {
             let s = a.as_struct();
             for (f, c) in s.fields().iter().zip(s.columns()) {
-                push_spread(&format!("{name}_{}", f.name()), &with_parent_nulls(s, c)?, fields, columns)?;
+                push_spread(
+                    &format!("{name}{sep}{}", f.name()),
+                    sep,
+                    &with_parent_nulls(s, c)?,
+                    fields,
+                    columns,
+                )?;
             }
         }
         DataType::List(_) | DataType::LargeList(_) | DataType::FixedSizeList(_, _) | DataType::Map(_, _) => {
@@ -52,7 +66,9 @@ fn with_parent_nulls(s: &StructArray, c: &ArrayRef) -> Result<ArrayRef, ArrowErr
     match s.nulls() {
         Some(n) => {
             let merged = datafusion::arrow::buffer::NullBuffer::union(Some(n), c.nulls());
-            Ok(datafusion::arrow::array::make_array(c.to_data().into_builder().nulls(merged).build()?))
+            Ok(datafusion::arrow::array::make_array(
+                c.to_data().into_builder().nulls(merged).build()?,
+            ))
         }
         None => Ok(c.clone()),
     }
@@ -65,7 +81,10 @@ pub fn flatten(b: &RecordBatch) -> Result<RecordBatch, ArrowError> {
     // Output rows: (input row, term index within each fit's term list).
     let mut rows: Vec<u32> = Vec::new();
     let mut term_at: Vec<Vec<Option<u32>>> = vec![Vec::new(); fits.len()];
-    let readers: Vec<FitReader> = fits.iter().filter_map(|&j| FitReader::of(b.column(j).as_struct())).collect();
+    let readers: Vec<FitReader> = fits
+        .iter()
+        .filter_map(|&j| FitReader::of(b.column(j).as_struct()))
+        .collect();
     for r in 0..b.num_rows() {
         let ranges: Vec<std::ops::Range<usize>> = readers
             .iter()
@@ -85,14 +104,21 @@ pub fn flatten(b: &RecordBatch) -> Result<RecordBatch, ArrowError> {
     for (j, f) in schema.fields().iter().enumerate() {
         let column = take(b.column(j).as_ref(), &rows, None)?;
         let Some(i) = fits.iter().position(|&k| k == j) else {
-            push_spread(f.name(), &column, &mut fields, &mut columns)?;
+            push_spread(f.name(), "_", &column, &mut fields, &mut columns)?;
             continue;
         };
         // The fit's scalar fields, repeated on each of its term rows.
         let fit = column.as_struct();
         for (ff, c) in fit.fields().iter().zip(fit.columns()) {
-            if !matches!(ff.data_type(), DataType::List(_) | DataType::LargeList(_) | DataType::Struct(_)) {
-                fields.push(Field::new(format!("{}_{}", f.name(), ff.name()), ff.data_type().clone(), true));
+            if !matches!(
+                ff.data_type(),
+                DataType::List(_) | DataType::LargeList(_) | DataType::Struct(_)
+            ) {
+                fields.push(Field::new(
+                    format!("{}_{}", f.name(), ff.name()),
+                    ff.data_type().clone(),
+                    true,
+                ));
                 columns.push(with_parent_nulls(fit, c)?);
             }
         }
@@ -107,6 +133,22 @@ pub fn flatten(b: &RecordBatch) -> Result<RecordBatch, ArrowError> {
             };
             fields.push(Field::new(name, tf.data_type().clone(), true));
             columns.push(take(c.as_ref(), &index, None)?);
+        }
+    }
+    RecordBatch::try_new(Arc::new(Schema::new(fields)), columns)
+}
+
+/// A batch for display: struct columns other than fits spread into `<column>.<field>`
+/// columns (fits stay whole: the text table summarises them).
+pub fn spread_for_display(b: &RecordBatch) -> Result<RecordBatch, ArrowError> {
+    let mut fields = Vec::new();
+    let mut columns: Vec<ArrayRef> = Vec::new();
+    for (f, c) in b.schema().fields().iter().zip(b.columns()) {
+        if matches!(c.data_type(), DataType::Struct(_)) && !is_fit(c) {
+            push_spread(f.name(), ".", c, &mut fields, &mut columns)?;
+        } else {
+            fields.push(f.as_ref().clone());
+            columns.push(c.clone());
         }
     }
     RecordBatch::try_new(Arc::new(Schema::new(fields)), columns)

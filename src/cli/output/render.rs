@@ -2,7 +2,9 @@
 //! Markdown.
 //!
 //! Text layout: a header, a rule of '─' under each column, then rows; numbers right-aligned
-//! with a chosen number of significant digits, p-values as `<1e-16` below that, NULL as `∅`,
+//! with a chosen number of significant digits and lined up on the decimal point, p-values in
+//! three significant digits however small, NULL as `∅`, struct columns spread into one column
+//! per field, headers without the engine's qualifiers where unambiguous,
 //! a fit struct summarised in one cell (status, rows, deviance, dispersion, number of terms).
 
 use crate::sql::model::fields::{FitField, FitReader, RecordTable, TermField};
@@ -105,13 +107,10 @@ pub fn format_number(v: f64, digits: usize) -> String {
     }
 }
 
-/// A p-value: below 1e-16 as `<1e-16`, otherwise 3 significant digits.
+/// A p-value in 3 significant digits, however small (the tails are computed directly, so
+/// small values keep their digits; scientific notation below 1e-4).
 pub fn format_p(v: f64) -> String {
-    if v < 1e-16 {
-        "<1e-16".into()
-    } else {
-        format_number(v, 3)
-    }
+    format_number(v, 3)
 }
 
 fn is_fit(s: &StructArray) -> bool {
@@ -166,12 +165,65 @@ fn cell(col: &ArrayRef, fmt: &ArrayFormatter<'_>, name: &str, r: usize, digits: 
     }
 }
 
+/// Column headers without the qualifiers the engine adds (`fit[dispersion]` -> `dispersion`,
+/// `t.t[term]` -> `term`, `r.low` -> `low`), each only where the short name is unique.
+fn short_headers(names: &[String]) -> Vec<String> {
+    let short = |n: &str| -> String {
+        let n = n.trim_end_matches(']');
+        let tail = n.rsplit(['[', '.']).next().unwrap_or(n);
+        tail.to_string()
+    };
+    let shorts: Vec<String> = names.iter().map(|n| short(n)).collect();
+    names
+        .iter()
+        .zip(&shorts)
+        .map(|(n, s)| {
+            let unique = shorts.iter().filter(|o| *o == s).count() == 1 && !s.is_empty();
+            if unique { s.clone() } else { n.clone() }
+        })
+        .collect()
+}
+
+/// Numbers of one column lined up on their decimal point (integers end where the points are);
+/// each keeps its own significant digits.
+fn align_decimals(rows: &mut [Vec<(String, bool)>], column: usize) {
+    let split = |s: &str| -> (usize, usize) {
+        match s.find('.') {
+            Some(i) => (text_width(&s[..i]), text_width(&s[i..])),
+            None => (text_width(s), 0),
+        }
+    };
+    let is_number = |s: &str| s.starts_with(|c: char| c.is_ascii_digit() || c == '-');
+    let (mut int_w, mut frac_w) = (0, 0);
+    for r in rows.iter() {
+        let (s, num) = &r[column];
+        if *num && is_number(s) {
+            let (i, f) = split(s);
+            int_w = int_w.max(i);
+            frac_w = frac_w.max(f);
+        }
+    }
+    for r in rows.iter_mut() {
+        let (s, num) = &mut r[column];
+        if *num && is_number(s) {
+            let (i, f) = split(s);
+            *s = format!("{}{s}{}", " ".repeat(int_w - i), " ".repeat(frac_w - f));
+        }
+    }
+}
+
 fn text_table(batches: &[RecordBatch], style: &Style) -> Result<String> {
+    let batches: Vec<RecordBatch> = batches
+        .iter()
+        .map(super::flat::spread_for_display)
+        .collect::<std::result::Result<_, _>>()?;
+    let batches = &batches[..];
     let Some(first) = batches.first() else {
         return Ok(String::new());
     };
     let schema = first.schema();
-    let names: Vec<String> = schema.fields().iter().map(|f| f.name().clone()).collect();
+    let full_names: Vec<String> = schema.fields().iter().map(|f| f.name().clone()).collect();
+    let names = short_headers(&full_names);
     let options = FormatOptions::default().with_null(NULL_MARK);
     let total: usize = batches.iter().map(RecordBatch::num_rows).sum();
     let mut rows: Vec<Vec<(String, bool)>> = Vec::new();
@@ -185,11 +237,14 @@ fn text_table(batches: &[RecordBatch], style: &Style) -> Result<String> {
                 b.columns()
                     .iter()
                     .zip(&fmts)
-                    .zip(&names)
+                    .zip(&full_names)
                     .map(|((c, f), n)| cell(c, f, n, r, style.digits))
                     .collect(),
             );
         }
+    }
+    for j in 0..names.len() {
+        align_decimals(&mut rows, j);
     }
     let markdown = style.format == Format::Markdown;
     let fold = style.width.filter(|_| !markdown);

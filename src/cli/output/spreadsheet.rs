@@ -36,7 +36,9 @@ pub fn write_xlsx(batches: &[RecordBatch], path: &std::path::Path) -> Result<usi
     let flat = super::flat::flatten_all(batches)?;
     let rows: usize = flat.iter().map(RecordBatch::num_rows).sum();
     if rows >= 1_048_575 {
-        return Err(format!("{rows} rows do not fit in one worksheet (limit 1,048,575); save as .parquet or .csv").into());
+        return Err(
+            format!("{rows} rows do not fit in one worksheet (limit 1,048,575); save as .parquet or .csv").into(),
+        );
     }
     let mut workbook = Workbook::new();
     let sheet = workbook.add_worksheet();
