@@ -304,7 +304,7 @@ fn whole_process(file: &Path) -> Option<(Duration, usize)> {
     let t0 = Instant::now();
     let child = std::process::Command::new(exe)
         .arg(file)
-        .arg("-e")
+        .arg("--run")
         .arg(sql)
         .args(["--format", "csv"])
         .stdout(std::process::Stdio::null())

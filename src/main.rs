@@ -23,30 +23,34 @@ static ALLOCATOR: mimalloc::MiMalloc = mimalloc::MiMalloc;
     name = "ratesheet",
     version,
     about = "Per-group Poisson rate models in SQL over Parquet and CSV files",
-    after_help = "Examples:\n  ratesheet pipes.parquet                      open the shell with table 'pipes'\n  \
-                  ratesheet data/ -e 'SELECT district, poisson_fit(breaks, km_years, material) AS fit FROM data GROUP BY district;'\n  \
+    after_help = "Examples:\n  ratesheet demo                               the narrated demo on the bundled data\n  \
+                  ratesheet pipes.parquet                      open the shell with table 'pipes'\n  \
+                  ratesheet data/ --run 'SELECT district, poisson_fit(breaks, km_years, material) AS fit FROM data GROUP BY district;'\n  \
                   ratesheet breaks.csv --script fits.sql --format csv\n  \
-                  ratesheet breaks.csv --script fits.sql --save-to fits.xlsx   results straight to a spreadsheet"
+                  ratesheet breaks.csv --script fits.sql --save-to fits.xlsx   results straight to a spreadsheet\n  \
+                  ratesheet breaks.csv --script fits.sql --draw-to fits.svg    a picture of the last result\n\n\
+                  'ratesheet demo' runs the demo; 'ratesheet demo-data DIR' writes the demo's files to DIR."
 )]
 struct Args {
     /// Parquet/CSV files or folders to open as tables (named after the file stem).
     paths: Vec<String>,
-    /// Run these SQL statements (separated by ';') and exit.
-    #[arg(short = 'e', long = "execute", value_name = "SQL")]
-    execute: Option<String>,
+    /// Run the given SQL statements (separated by ';'), print their results, and exit.
+    #[arg(long = "run", value_name = "SQL")]
+    run: Option<String>,
     /// Run the statements in this file and exit.
     #[arg(long, value_name = "FILE")]
     script: Option<String>,
-    /// How results are printed.
+    /// How results are printed (to write .xlsx or .parquet files, use --save-to FILE).
     #[arg(long, value_enum, default_value = "table")]
     format: Format,
-    /// Significant digits of numbers in table output.
-    #[arg(long, default_value_t = 5)]
-    digits: usize,
+    /// Significant digits of numbers in table output, 1 to 17.
+    #[arg(long, default_value_t = 5, value_parser = clap::value_parser!(u8).range(1..=17))]
+    digits: u8,
     /// Worker threads (default: all cores).
     #[arg(long)]
     threads: Option<usize>,
-    /// Memory limit, e.g. 512M or 4G; aggregates spill to disk beyond it.
+    /// Memory limit, e.g. 512M, 4G, 2GB or 1.5GiB (K, M, G with or without B or iB, all powers
+    /// of 1024); aggregates spill to disk beyond it.
     #[arg(long, value_name = "BYTES")]
     memory_limit: Option<String>,
     /// Never show the progress line (it shows only on a terminal, for statements over a second).
@@ -67,20 +71,26 @@ struct Args {
     draw_to: Option<String>,
 }
 
+/// A size such as `512M`, `4G`, `2GB` or `1.5GiB`: K, M and G (optionally followed by `B` or
+/// `iB`, any case) are all powers of 1024; a bare number is bytes.
 fn parse_bytes(s: &str) -> Result<usize, String> {
-    let s = s.trim();
-    let (num, mult) = match s.chars().last().map(|c| c.to_ascii_uppercase()) {
-        Some('K') => (&s[..s.len() - 1], 1usize << 10),
-        Some('M') => (&s[..s.len() - 1], 1 << 20),
-        Some('G') => (&s[..s.len() - 1], 1 << 30),
-        _ => (s, 1),
+    let text = s.trim();
+    let upper = text.to_ascii_uppercase();
+    let unit_start = upper.find(|c: char| c.is_ascii_alphabetic()).unwrap_or(upper.len());
+    let (num, unit) = upper.split_at(unit_start);
+    let mult: usize = match unit.trim() {
+        "" | "B" => 1,
+        "K" | "KB" | "KIB" => 1 << 10,
+        "M" | "MB" | "MIB" => 1 << 20,
+        "G" | "GB" | "GIB" => 1 << 30,
+        _ => usize::MAX,
     };
     num.trim()
         .parse::<f64>()
         .ok()
-        .filter(|v| *v > 0.0)
+        .filter(|v| *v > 0.0 && v.is_finite() && mult != usize::MAX)
         .map(|v| (v * mult as f64) as usize)
-        .ok_or_else(|| format!("--memory-limit {s}: expected a size such as 512M or 4G"))
+        .ok_or_else(|| format!("--memory-limit {text}: expected a size such as 512M, 4G, 2GB or 1.5GiB"))
 }
 
 #[tokio::main]
@@ -117,15 +127,15 @@ async fn main() -> ExitCode {
         };
     }
     if args.paths == ["demo"] && !std::path::Path::new("demo").exists() {
-        return run_demo(&ctx, args.digits, &Hints::new(!args.no_hints)).await;
+        return run_demo(&ctx, args.digits as usize, &Hints::new(!args.no_hints)).await;
     }
-    let interactive = args.execute.is_none() && args.script.is_none();
+    let interactive = args.run.is_none() && args.script.is_none();
     if interactive && args.save_to.is_some() {
-        eprintln!("error: --save-to needs statements to run (-e SQL or --script FILE); in the shell use ~save");
+        eprintln!("error: --save-to needs statements to run (--run SQL or --script FILE); in the shell use ~export");
         return ExitCode::from(2);
     }
     if interactive && args.draw_to.is_some() {
-        eprintln!("error: --draw-to needs statements to run (-e SQL or --script FILE); in the shell use ~draw");
+        eprintln!("error: --draw-to needs statements to run (--run SQL or --script FILE); in the shell use ~draw");
         return ExitCode::from(2);
     }
     for p in &args.paths {
@@ -142,11 +152,11 @@ async fn main() -> ExitCode {
     }
     let style = Style {
         format: args.format,
-        digits: args.digits,
+        digits: args.digits as usize,
         max_rows: if interactive { 40 } else { usize::MAX },
         width: ratesheet::cli::output::terminal_width(),
     };
-    let text = match (&args.execute, &args.script) {
+    let text = match (&args.run, &args.script) {
         (Some(sql), _) => sql.clone(),
         (None, Some(path)) => match std::fs::read_to_string(path) {
             Ok(t) => t,

@@ -1,5 +1,5 @@
 //! One-line hints on stderr about statements whose SQL is valid but rarely what a rate job
-//! means. Each hint shows once per session; `~hints off` or `--no-hints` turns them off.
+//! means. Each hint shows once per session; `~prefer hints off` or `--no-hints` turns them off.
 //!
 //! The one hint so far: dividing two whole-number expressions. SQL keeps that division whole
 //! (`1000 * SUM(cases) / SUM(pop)` gives 10 for 10.217), which is the first line of a typical
@@ -15,18 +15,27 @@ use datafusion::logical_expr::{BinaryExpr, Expr, ExprSchemable, LogicalPlan, Ope
 #[derive(Debug, Clone)]
 pub struct Hints {
     armed: Arc<AtomicBool>,
+    /// Whether the user wants hints (`armed` also turns off once a hint has shown).
+    wanted: Arc<AtomicBool>,
 }
 
 impl Hints {
     pub fn new(enabled: bool) -> Self {
         Hints {
             armed: Arc::new(AtomicBool::new(enabled)),
+            wanted: Arc::new(AtomicBool::new(enabled)),
         }
     }
 
     /// Turns hints on (again) or off.
     pub fn set_enabled(&self, on: bool) {
         self.armed.store(on, Ordering::Relaxed);
+        self.wanted.store(on, Ordering::Relaxed);
+    }
+
+    /// Whether hints are on (as the user last set them).
+    pub fn enabled(&self) -> bool {
+        self.wanted.load(Ordering::Relaxed)
     }
 
     /// Prints the hint for `plan` if it applies and has not been shown in this session.
@@ -51,7 +60,7 @@ pub fn integer_division_hint(plan: &LogicalPlan) -> Option<String> {
     let division = integer_division(plan)?;
     Some(format!(
         "hint: {division} divides whole numbers, and SQL keeps the result whole (10217 / 1000 gives 10); \
-         for a rate, write 1000.0 or CAST(... AS DOUBLE). (Shown once; ~hints off or --no-hints silences hints.)"
+         for a rate, write 1000.0 or CAST(... AS DOUBLE). (Shown once; ~prefer hints off or --no-hints silences hints.)"
     ))
 }
 

@@ -22,17 +22,14 @@ use super::statements::split;
 /// What a shell command does (the shell dispatches on it; nothing matches command names).
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub enum Action {
-    Tables,
-    Columns,
-    Open,
-    Help,
-    Format,
-    Digits,
-    Timing,
-    Hints,
-    Save,
+    Sources,
+    Add,
+    Fits,
     Draw,
-    Quit,
+    Export,
+    Prefer,
+    Guide,
+    Leave,
 }
 
 /// One shell command: its name, argument synopsis, help line and action.
@@ -43,61 +40,27 @@ pub struct Command {
     pub action: Action,
 }
 
-/// Every shell command: the single definition used for dispatch, help and completion.
+/// Every shell command: the single definition used for dispatch, help and completion. The set
+/// follows the work: the data (`sources`, `add`), the fits (`fits`), pictures (`draw`), results
+/// out (`export`), preferences (`prefer`), the guide and leaving.
 pub const COMMANDS: &[Command] = &[
     Command {
-        name: "tables",
-        args: "",
-        help: "list open tables with their row counts",
-        action: Action::Tables,
+        name: "sources",
+        args: "[TABLE]",
+        help: "the open tables with their row counts, or one table's columns and types",
+        action: Action::Sources,
     },
     Command {
-        name: "columns",
-        args: "TABLE",
-        help: "show a table's columns and types",
-        action: Action::Columns,
-    },
-    Command {
-        name: "open",
+        name: "add",
         args: "PATH [NAME]",
-        help: "open a Parquet/CSV file or folder as a table",
-        action: Action::Open,
+        help: "add a Parquet/CSV file or folder as a table (quote a path with spaces)",
+        action: Action::Add,
     },
     Command {
-        name: "help",
-        args: "[FUNCTION]",
-        help: "list ratesheet's SQL functions, or show one function's documentation",
-        action: Action::Help,
-    },
-    Command {
-        name: "format",
-        args: "table|csv|json|markdown",
-        help: "choose how results are printed",
-        action: Action::Format,
-    },
-    Command {
-        name: "digits",
-        args: "N",
-        help: "significant digits for numbers",
-        action: Action::Digits,
-    },
-    Command {
-        name: "timing",
-        args: "on|off",
-        help: "show the time each statement took",
-        action: Action::Timing,
-    },
-    Command {
-        name: "hints",
-        args: "on|off",
-        help: "one-line hints about SQL that is valid but rarely meant (each shows once)",
-        action: Action::Hints,
-    },
-    Command {
-        name: "save",
-        args: "FILE [replace]",
-        help: "write the last result to FILE (.csv, .json lines, .parquet, or .xlsx with fits one row per term); 'replace' overwrites",
-        action: Action::Save,
+        name: "fits",
+        args: "",
+        help: "the fits in the last result: status, rows, dispersion, overdispersion and flagged terms per fit",
+        action: Action::Fits,
     },
     Command {
         name: "draw",
@@ -106,12 +69,112 @@ pub const COMMANDS: &[Command] = &[
         action: Action::Draw,
     },
     Command {
-        name: "quit",
+        name: "export",
+        args: "FILE [replace]",
+        help: "write the last result to FILE (.csv and .xlsx flat with one row per term, .json nested, .parquet); 'replace' overwrites",
+        action: Action::Export,
+    },
+    Command {
+        name: "prefer",
+        args: "[layout table|csv|json|markdown | precision N | clock on|off | hints on|off]",
+        help: "show or change how results are shown: layout, significant digits, statement clock, one-line hints",
+        action: Action::Prefer,
+    },
+    Command {
+        name: "guide",
+        args: "[FUNCTION]",
+        help: "the commands and ratesheet's SQL functions, or one function's documentation and example",
+        action: Action::Guide,
+    },
+    Command {
+        name: "leave",
         args: "",
         help: "leave the shell (Ctrl-D works too)",
-        action: Action::Quit,
+        action: Action::Leave,
     },
 ];
+
+/// Names people may try from habit, with the command that does that here.
+const HABITS: &[(&str, &str)] = &[
+    ("save", "export"),
+    ("quit", "leave"),
+    ("exit", "leave"),
+    ("help", "guide"),
+    ("open", "add"),
+    ("tables", "sources"),
+    ("columns", "sources TABLE"),
+    ("format", "prefer layout"),
+    ("digits", "prefer precision"),
+    ("timing", "prefer clock"),
+];
+
+/// The suggestion for an unknown command name: a habit's counterpart, or commands sharing
+/// its first letters.
+fn suggestion(name: &str) -> String {
+    if let Some((_, to)) = HABITS.iter().find(|(from, _)| *from == name) {
+        return format!("; did you mean {PREFIX}{to}?");
+    }
+    let close: Vec<String> = COMMANDS
+        .iter()
+        .filter(|c| !name.is_empty() && (c.name.starts_with(&name[..1]) || name.starts_with(c.name)))
+        .map(|c| format!("{PREFIX}{}", c.name))
+        .collect();
+    if close.is_empty() {
+        String::new()
+    } else {
+        format!("; did you mean {}?", close.join(" or "))
+    }
+}
+
+/// The prompt: the number of the next statement and a marker; a statement continued over
+/// several lines shows a dotted bar under it.
+pub fn prompt(next: usize, continued: bool) -> String {
+    let n = next.to_string();
+    if continued {
+        format!("{} ┆ ", " ".repeat(n.len()))
+    } else {
+        format!("{n} ▸ ")
+    }
+}
+
+/// Splits a command line into words; single or double quotes keep spaces inside a word and a
+/// backslash escapes the next character.
+pub fn command_words(text: &str) -> Vec<String> {
+    let mut words = Vec::new();
+    let mut word = String::new();
+    let mut in_word = false;
+    let mut quote: Option<char> = None;
+    let mut chars = text.chars();
+    while let Some(c) = chars.next() {
+        match (c, quote) {
+            ('\\', _) => {
+                if let Some(next) = chars.next() {
+                    word.push(next);
+                }
+                in_word = true;
+            }
+            (q, None) if q == '\'' || q == '"' => {
+                quote = Some(q);
+                in_word = true;
+            }
+            (q, Some(open)) if q == open => quote = None,
+            (c, None) if c.is_whitespace() => {
+                if in_word {
+                    words.push(std::mem::take(&mut word));
+                    in_word = false;
+                }
+            }
+            (c, _) => {
+                word.push(c);
+                in_word = true;
+            }
+        }
+    }
+    if in_word {
+        words.push(word);
+    }
+    words
+}
 
 /// The shell's prefix for commands.
 pub const PREFIX: char = '~';
@@ -220,6 +283,8 @@ pub struct Shell {
     pub hints: Hints,
     last: Vec<RecordBatch>,
     completion_words: Arc<Mutex<Vec<String>>>,
+    /// Statements run so far (the prompt shows the next one's number).
+    statements: usize,
 }
 
 impl Shell {
@@ -232,6 +297,7 @@ impl Shell {
             hints: Hints::new(true),
             last: Vec::new(),
             completion_words: Arc::default(),
+            statements: 0,
         }
     }
 
@@ -254,11 +320,11 @@ impl Shell {
         if let Some(h) = &history {
             let _ = editor.load_history(h);
         }
-        println!("ratesheet shell — SQL ends with ';', commands start with '{PREFIX}' ({PREFIX}help lists them).");
+        println!("ratesheet shell — SQL ends with ';', commands start with '{PREFIX}' ({PREFIX}guide lists them).");
         let mut buffer = String::new();
         loop {
-            let prompt = if buffer.trim().is_empty() { "rates> " } else { "  ...> " };
-            match editor.readline(prompt) {
+            let prompt = prompt(self.statements + 1, !buffer.trim().is_empty());
+            match editor.readline(&prompt) {
                 Ok(line) => {
                     let trimmed = line.trim();
                     if buffer.trim().is_empty() && trimmed.starts_with(PREFIX) {
@@ -281,6 +347,7 @@ impl Shell {
                     }
                     let _ = editor.add_history_entry(buffer.trim());
                     for sql in &split.complete {
+                        self.statements += 1;
                         // Ctrl-C cancels the rest of the line's statements too.
                         if !self.execute(sql).await {
                             break;
@@ -333,13 +400,8 @@ impl Shell {
                     Ok(text) => print!("{text}"),
                     Err(e) => eprintln!("error: {e}"),
                 }
-                let rows: usize = batches.iter().map(|b| b.num_rows()).sum();
                 if self.timing {
-                    eprintln!(
-                        "({rows} row{} in {:.3} s)",
-                        if rows == 1 { "" } else { "s" },
-                        start.elapsed().as_secs_f64()
-                    );
+                    eprintln!("{}", footer(&batches, start.elapsed()));
                 }
                 self.last = batches;
             }
@@ -351,37 +413,20 @@ impl Shell {
 
     /// Handles a shell command; returns false to leave the shell.
     async fn command(&mut self, text: &str) -> bool {
-        let mut words = text.split_whitespace();
-        let name = words.next().unwrap_or("");
-        let args: Vec<&str> = words.collect();
+        let words = command_words(text);
+        let name = words.first().map(String::as_str).unwrap_or("");
+        let args: Vec<&str> = words.iter().skip(1).map(String::as_str).collect();
         let Some(cmd) = COMMANDS.iter().find(|c| c.name == name) else {
-            eprintln!("unknown command {PREFIX}{name}; {PREFIX}help lists the commands");
+            eprintln!(
+                "unknown command {PREFIX}{name}{}; {PREFIX}guide lists the commands",
+                suggestion(name)
+            );
             return true;
         };
         match cmd.action {
-            Action::Quit => return false,
-            Action::Tables => {
-                let sql = "SELECT table_name FROM information_schema.tables WHERE table_schema = 'public' ORDER BY 1";
-                if let Ok(df) = self.ctx.sql(sql).await {
-                    if let Ok(batches) = df.collect().await {
-                        for b in &batches {
-                            let names = datafusion::arrow::array::AsArray::as_string::<i32>(b.column(0));
-                            for n in names.iter().flatten() {
-                                let n_rows = match self.ctx.table(n).await {
-                                    Ok(t) => t
-                                        .count()
-                                        .await
-                                        .map(|c| c.to_string())
-                                        .unwrap_or_else(|e| format!("? ({e})")),
-                                    Err(e) => format!("? ({e})"),
-                                };
-                                println!("{n:<24} {n_rows:>12} rows");
-                            }
-                        }
-                    }
-                }
-            }
-            Action::Columns => match args.first() {
+            Action::Leave => return false,
+            Action::Sources => match args.first() {
+                None => self.list_tables().await,
                 Some(t) => match self.ctx.table(*t).await {
                     Ok(df) => {
                         for f in df.schema().fields() {
@@ -390,53 +435,20 @@ impl Shell {
                     }
                     Err(e) => eprintln!("error: {e}"),
                 },
-                None => eprintln!("usage: {PREFIX}columns TABLE"),
             },
-            Action::Open => match args.first() {
+            Action::Add => match args.first() {
                 Some(p) => match open_table(&self.ctx, p, args.get(1).copied()).await {
-                    Ok(name) => println!("opened {p} as {name}"),
+                    Ok(name) => println!("added {p} as {name}"),
                     Err(e) => eprintln!("error: {e}"),
                 },
-                None => eprintln!("usage: {PREFIX}open PATH [NAME]"),
+                None => eprintln!("usage: {PREFIX}add PATH [NAME]"),
             },
-            Action::Help => print_help(args.first().copied()),
-            Action::Format => {
-                use clap::ValueEnum;
-                match args.first().and_then(|f| Format::from_str(f, true).ok()) {
-                    Some(f) => self.style.format = f,
-                    None => eprintln!("usage: {PREFIX}format table|csv|json|markdown"),
-                }
-            }
-            Action::Digits => match args
-                .first()
-                .and_then(|d| d.parse::<usize>().ok())
-                .filter(|d| (1..=17).contains(d))
-            {
-                Some(d) => self.style.digits = d,
-                None => eprintln!("usage: {PREFIX}digits N (1 to 17)"),
+            Action::Fits => match super::output::fit_overview(&self.last, self.style.digits) {
+                Some(text) => print!("{text}"),
+                None => eprintln!("the last result has no fit column"),
             },
-            Action::Timing => match args.first().copied() {
-                Some("on") => self.timing = true,
-                Some("off") => self.timing = false,
-                _ => eprintln!("usage: {PREFIX}timing on|off"),
-            },
-            Action::Hints => match args.first().copied() {
-                Some("on") => self.hints.set_enabled(true),
-                Some("off") => self.hints.set_enabled(false),
-                _ => eprintln!("usage: {PREFIX}hints on|off"),
-            },
-            Action::Save => match args.first() {
-                Some(path) => match save_batches(
-                    &self.last,
-                    path,
-                    args.get(1) == Some(&"replace"),
-                    &format!("add 'replace' to overwrite it: {PREFIX}save {path} replace"),
-                ) {
-                    Ok(rows) => println!("wrote {rows} rows to {path}"),
-                    Err(e) => eprintln!("error: {e}"),
-                },
-                None => eprintln!("usage: {PREFIX}save FILE [replace]"),
-            },
+            Action::Guide => print_help(args.first().copied()),
+            Action::Prefer => self.prefer(&args),
             Action::Draw => {
                 let words: Vec<String> = args.iter().map(|w| w.to_string()).collect();
                 let drawn = crate::cli::picture::Request::parse(&words).and_then(|request| {
@@ -454,9 +466,115 @@ impl Shell {
                     Err(e) => eprintln!("error: {e}"),
                 }
             }
+            Action::Export => match args.first() {
+                Some(path) => match save_batches(
+                    &self.last,
+                    path,
+                    args.get(1) == Some(&"replace"),
+                    &format!("add 'replace' to overwrite it: {PREFIX}export {path} replace"),
+                ) {
+                    Ok(rows) => println!("wrote {rows} rows to {path}"),
+                    Err(e) => eprintln!("error: {e}"),
+                },
+                None => eprintln!("usage: {PREFIX}export FILE [replace]"),
+            },
         }
         true
     }
+
+    async fn list_tables(&self) {
+        let sql = "SELECT table_name FROM information_schema.tables WHERE table_schema = 'public' ORDER BY 1";
+        let Ok(df) = self.ctx.sql(sql).await else { return };
+        let Ok(batches) = df.collect().await else { return };
+        for b in &batches {
+            let names = datafusion::arrow::array::AsArray::as_string::<i32>(b.column(0));
+            for n in names.iter().flatten() {
+                let n_rows = match self.ctx.table(n).await {
+                    Ok(t) => t
+                        .count()
+                        .await
+                        .map(|c| c.to_string())
+                        .unwrap_or_else(|e| format!("? ({e})")),
+                    Err(e) => format!("? ({e})"),
+                };
+                println!("{n:<24} {n_rows:>12} rows");
+            }
+        }
+    }
+
+    /// `~prefer`: without arguments the current preferences; with a key and a value, the change
+    /// (said back on success).
+    fn prefer(&mut self, args: &[&str]) {
+        use clap::ValueEnum;
+        let on_off = |v: Option<&&str>| match v.copied() {
+            Some("on") => Some(true),
+            Some("off") => Some(false),
+            _ => None,
+        };
+        let show = |s: &Shell| {
+            format!(
+                "layout {}, precision {}, clock {}, hints {}",
+                format!("{:?}", s.style.format).to_ascii_lowercase(),
+                s.style.digits,
+                if s.timing { "on" } else { "off" },
+                if s.hints.enabled() { "on" } else { "off" }
+            )
+        };
+        match args.first().copied() {
+            None => println!("{}", show(self)),
+            Some("layout") => match args.get(1).and_then(|f| Format::from_str(f, true).ok()) {
+                Some(f) => {
+                    self.style.format = f;
+                    println!("{}", show(self));
+                }
+                None => eprintln!("usage: {PREFIX}prefer layout table|csv|json|markdown"),
+            },
+            Some("precision") => match args
+                .get(1)
+                .and_then(|d| d.parse::<usize>().ok())
+                .filter(|d| (1..=17).contains(d))
+            {
+                Some(d) => {
+                    self.style.digits = d;
+                    println!("{}", show(self));
+                }
+                None => eprintln!("usage: {PREFIX}prefer precision N (1 to 17 significant digits)"),
+            },
+            Some("clock") => match on_off(args.get(1)) {
+                Some(b) => {
+                    self.timing = b;
+                    println!("{}", show(self));
+                }
+                None => eprintln!("usage: {PREFIX}prefer clock on|off"),
+            },
+            Some("hints") => match on_off(args.get(1)) {
+                Some(b) => {
+                    self.hints.set_enabled(b);
+                    println!("{}", show(self));
+                }
+                None => eprintln!("usage: {PREFIX}prefer hints on|off"),
+            },
+            Some(other) => eprintln!(
+                "{PREFIX}prefer {other}: unknown preference; the preferences are layout, precision, clock, hints"
+            ),
+        }
+    }
+}
+
+/// The line after a result: rows and time (`↳ 10 rows · 7 ms`), or `done` for a statement
+/// that returns no table (SET, CREATE VIEW).
+pub fn footer(batches: &[RecordBatch], elapsed: std::time::Duration) -> String {
+    let time = if elapsed.as_secs_f64() < 1.0 {
+        format!("{} ms", elapsed.as_millis())
+    } else {
+        format!("{:.2} s", elapsed.as_secs_f64())
+    };
+    let columns = batches.first().map_or(0, |b| b.num_columns());
+    if columns == 0 {
+        return format!("↳ done · {time}");
+    }
+    let rows: usize = batches.iter().map(|b| b.num_rows()).sum();
+    format!("↳ {rows} row{} · {time}", if rows == 1 { "" } else { "s" })
 }
 
 /// Prints the command list and the SQL functions, or one function's documentation.
@@ -487,7 +605,7 @@ pub fn print_help(function: Option<&str>) {
             for c in COMMANDS {
                 println!("  {PREFIX}{:<28} {}", format!("{} {}", c.name, c.args), c.help);
             }
-            println!("\nSQL functions ({PREFIX}help NAME for details):");
+            println!("\nSQL functions ({PREFIX}guide NAME for details):");
             for (n, d) in &docs {
                 println!("  {:<50} {}", d.syntax_example, first_sentence(&d.description));
                 let _ = n;
@@ -516,5 +634,33 @@ fn save_history(editor: &mut Editor<Completion, DefaultHistory>, path: &std::pat
     let tmp = path.with_extension("txt.partial");
     if editor.save_history(&tmp).is_ok() {
         let _ = std::fs::rename(&tmp, path);
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn command_words_keep_quoted_and_escaped_spaces() {
+        assert_eq!(
+            command_words("add '/tmp/LC 1977.csv' lc"),
+            ["add", "/tmp/LC 1977.csv", "lc"]
+        );
+        assert_eq!(
+            command_words(r#"export "a b.csv" replace"#),
+            ["export", "a b.csv", "replace"]
+        );
+        assert_eq!(command_words(r"add /tmp/LC\ 1977.csv"), ["add", "/tmp/LC 1977.csv"]);
+        assert_eq!(command_words("  sources  "), ["sources"]);
+    }
+
+    #[test]
+    fn unknown_names_get_a_suggestion() {
+        assert_eq!(suggestion("quit"), "; did you mean ~leave?");
+        assert_eq!(suggestion("dra"), "; did you mean ~draw?");
+        assert_eq!(suggestion("zzz"), "");
+        assert_eq!(prompt(12, false), "12 ▸ ");
+        assert_eq!(prompt(12, true), "   ┆ ");
     }
 }

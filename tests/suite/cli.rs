@@ -22,7 +22,7 @@ fn files_open_as_tables_named_after_their_stem() {
     let (code, out, err) = run(&[
         "demo-parquet/pipe_breaks.parquet",
         "demo-parquet/callouts.csv",
-        "-e",
+        "--run",
         "SELECT COUNT(*) AS n FROM pipe_breaks; SELECT SUM(callouts) AS total FROM callouts;",
         "--format",
         "csv",
@@ -43,7 +43,7 @@ fn files_open_as_tables_named_after_their_stem() {
 #[test]
 fn a_failing_statement_stops_the_run_with_a_nonzero_exit() {
     let (code, out, err) = run(&[
-        "-e",
+        "--run",
         "SELECT 1 AS one; SELECT nope FROM nowhere; SELECT 2;",
         "--format",
         "csv",
@@ -55,7 +55,7 @@ fn a_failing_statement_stops_the_run_with_a_nonzero_exit() {
 
 #[test]
 fn a_missing_file_is_named_in_the_error() {
-    let (code, _, err) = run(&["no/such/file.parquet", "-e", "SELECT 1"]);
+    let (code, _, err) = run(&["no/such/file.parquet", "--run", "SELECT 1"]);
     assert_eq!(code, 1);
     assert!(err.contains("no/such/file.parquet: no such file"), "{err}");
 }
@@ -88,7 +88,7 @@ fn scripts_and_output_formats() {
     ]);
     assert!(out.starts_with("| district  | status"), "{out}");
     let (_, out, _) = run(&["demo-parquet/pipe_breaks.parquet", "--script", path]);
-    assert!(out.contains("─────") && out.contains("Riverside"), "{out}");
+    assert!(out.contains("━━━━━") && out.contains("Riverside"), "{out}");
     std::fs::remove_dir_all(&dir).ok();
 }
 
@@ -116,13 +116,13 @@ fn hostile_files_are_refused_naming_the_file_and_odd_delimiters_are_read() {
         ("header.csv", "the file has a header line but no data rows"),
         ("cut.parquet", "cut.parquet"),
     ] {
-        let (code, _, err) = run(&[&path(file), "-e", "SELECT 1"]);
+        let (code, _, err) = run(&[&path(file), "--run", "SELECT 1"]);
         assert_eq!(code, 1, "{file}: {err}");
         assert!(err.contains(expected) && err.contains(file), "{file}: {err}");
     }
     let (code, out, err) = run(&[
         &path("semi.csv"),
-        "-e",
+        "--run",
         "SELECT SUM(b) AS s FROM semi",
         "--format",
         "csv",
@@ -138,13 +138,19 @@ fn save_to_writes_a_workbook_that_opens_again_as_a_table() {
     std::fs::create_dir_all(&dir).unwrap();
     let book = dir.join("counts.xlsx").to_string_lossy().into_owned();
     let sql = "SELECT material, SUM(breaks) AS breaks, SUM(km_years) AS km_years FROM pipe_breaks GROUP BY material ORDER BY material";
-    let (code, _, err) = run(&["demo-parquet/pipe_breaks.parquet", "-e", sql, "--save-to", &book]);
+    let (code, _, err) = run(&["demo-parquet/pipe_breaks.parquet", "--run", sql, "--save-to", &book]);
     assert_eq!(code, 0, "{err}");
-    let (code, _, err) = run(&["demo-parquet/pipe_breaks.parquet", "-e", sql, "--save-to", &book]);
+    let (code, _, err) = run(&["demo-parquet/pipe_breaks.parquet", "--run", sql, "--save-to", &book]);
     assert_eq!(code, 1);
     assert!(err.contains("exists; add --replace"), "{err}");
-    let (_, direct, _) = run(&["demo-parquet/pipe_breaks.parquet", "-e", sql, "--format", "csv"]);
-    let (code, reopened, err) = run(&[&book, "-e", "SELECT * FROM counts ORDER BY material", "--format", "csv"]);
+    let (_, direct, _) = run(&["demo-parquet/pipe_breaks.parquet", "--run", sql, "--format", "csv"]);
+    let (code, reopened, err) = run(&[
+        &book,
+        "--run",
+        "SELECT * FROM counts ORDER BY material",
+        "--format",
+        "csv",
+    ]);
     assert_eq!(code, 0, "{err}");
     assert_eq!(reopened, direct);
     std::fs::remove_dir_all(&dir).unwrap();
@@ -235,7 +241,7 @@ fn workbooks_open_as_tables_and_bad_headers_are_refused() {
     };
     let (code, out, err) = run(&[
         &good,
-        "-e",
+        "--run",
         "SELECT arrow_typeof(faults) AS t1, arrow_typeof(hours) AS t2, faults * 2 AS f FROM good_counts ORDER BY depot; SELECT * FROM good_notes",
         "--format",
         "csv",
@@ -266,7 +272,7 @@ fn workbooks_open_as_tables_and_bad_headers_are_refused() {
         ),
         (&twice, "sheet counts: the column name a appears twice (again at B1)"),
     ] {
-        let (code, _, err) = run(&[path, "-e", "SELECT 1"]);
+        let (code, _, err) = run(&[path, "--run", "SELECT 1"]);
         assert_eq!(code, 1, "{path}: {err}");
         assert!(err.contains(path.as_str()) && err.contains(says), "{path}: {err}");
     }
@@ -279,7 +285,7 @@ fn workbooks_open_as_tables_and_bad_headers_are_refused() {
 fn whole_number_division_gets_a_hint_once() {
     let sql = "SELECT 1000 * SUM(c) / SUM(p) AS rate FROM (VALUES (10, 1000), (13, 1251)) AS t(c, p); \
                SELECT 1000 * SUM(c) / SUM(p) AS again FROM (VALUES (10, 1000), (13, 1251)) AS t(c, p);";
-    let (code, out, err) = run(&["-e", sql, "--format", "csv"]);
+    let (code, out, err) = run(&["--run", sql, "--format", "csv"]);
     assert_eq!(code, 0, "{err}");
     assert_eq!(out, "rate\n10\nagain\n10\n");
     assert_eq!(err.matches("hint:").count(), 1, "{err}");
@@ -287,10 +293,10 @@ fn whole_number_division_gets_a_hint_once() {
         err.contains("hint: (1000 * sum(t.c)) / sum(t.p) divides whole numbers"),
         "{err}"
     );
-    let (_, _, err) = run(&["-e", sql, "--format", "csv", "--no-hints"]);
+    let (_, _, err) = run(&["--run", sql, "--format", "csv", "--no-hints"]);
     assert!(!err.contains("hint:"), "{err}");
     let (_, out, err) = run(&[
-        "-e",
+        "--run",
         "SELECT 1000.0 * SUM(c) / SUM(p) AS rate FROM (VALUES (10, 1000), (13, 1251)) AS t(c, p);",
         "--format",
         "csv",

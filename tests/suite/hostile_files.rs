@@ -42,7 +42,7 @@ fn hostile_kinds(dir: &Path) -> Vec<(String, String, &'static str)> {
     let status = std::process::Command::new(env!("CARGO_BIN_EXE_ratesheet"))
         .args([
             other.as_str(),
-            "-e",
+            "--run",
             &format!("COPY (SELECT * FROM other) TO '{}'", part2.display()),
         ])
         .output()
@@ -101,14 +101,14 @@ fn every_hostile_kind_is_refused_naming_the_file_and_the_shell_goes_on() {
     let mut c = std::process::Command::new(env!("CARGO_BIN_EXE_ratesheet"));
     c.arg(DEMO).env("XDG_DATA_HOME", &dir).env("TERM", "xterm");
     let mut p = spawn_command(c, Some(30_000)).unwrap();
-    p.exp_string("rates> ").unwrap();
+    p.exp_regex(crate::support::PROMPT).unwrap();
     for (path, sql, says) in &kinds {
-        p.send_line(&format!("~open {path}")).unwrap();
+        p.send_line(&format!("~add {path}")).unwrap();
         // Files refused when opened end here; the others fail when read.
-        let mut answer = p.exp_string("rates> ").unwrap();
+        let mut answer = p.exp_regex(crate::support::PROMPT).unwrap().0;
         if !answer.contains("error:") {
             p.send_line(sql).unwrap();
-            answer = p.exp_string("rates> ").unwrap();
+            answer = p.exp_regex(crate::support::PROMPT).unwrap().0;
         }
         assert!(
             answer.contains(path.as_str())
@@ -118,9 +118,9 @@ fn every_hostile_kind_is_refused_naming_the_file_and_the_shell_goes_on() {
             "{path}: expected a refusal (not a caught panic) naming the file and saying '{says}', got:\n{answer}"
         );
     }
-    p.send_line(&format!("~open {}", semi.display())).unwrap();
+    p.send_line(&format!("~add {}", semi.display())).unwrap();
     p.exp_string("separated by semicolons").unwrap();
-    p.exp_string("rates> ").unwrap();
+    p.exp_regex(crate::support::PROMPT).unwrap();
     p.send_line("SELECT SUM(b) * 100 + 1 AS check_value FROM semi;")
         .unwrap();
     p.exp_string("601").unwrap();
@@ -128,7 +128,7 @@ fn every_hostile_kind_is_refused_naming_the_file_and_the_shell_goes_on() {
     p.send_line("SELECT COUNT(*) * 2 AS cells_twice FROM pipe_breaks;")
         .unwrap();
     p.exp_string("3600").unwrap();
-    p.send_line("~quit").unwrap();
+    p.send_line("~leave").unwrap();
     p.exp_eof().unwrap();
     std::fs::remove_dir_all(&dir).ok();
 }

@@ -15,7 +15,7 @@ const BIG_GROUP_BY: &str = "SELECT COUNT(*) AS groups, ROUND(SUM(fit.deviance), 
 
 fn run_limited(limit: Option<&str>) -> (Option<i32>, String, String) {
     let mut c = std::process::Command::new(env!("CARGO_BIN_EXE_ratesheet"));
-    c.args(["--threads", "2", "-e", BIG_GROUP_BY, "--format", "csv"]);
+    c.args(["--threads", "2", "--run", BIG_GROUP_BY, "--format", "csv"]);
     if let Some(l) = limit {
         c.args(["--memory-limit", l]);
     }

@@ -144,7 +144,7 @@ fn draw_to_writes_a_png_that_decodes_and_is_not_blank() {
         .current_dir(env!("CARGO_MANIFEST_DIR"))
         .args([
             "demo-parquet/pipe_breaks.parquet",
-            "--execute",
+            "--run",
             "SELECT district, poisson_fit(breaks, km_years, material) AS fit FROM pipe_breaks GROUP BY district ORDER BY district",
             "--format",
             "csv",
@@ -174,7 +174,7 @@ fn draw_to_writes_a_png_that_decodes_and_is_not_blank() {
     let again = Command::new(env!("CARGO_BIN_EXE_ratesheet"))
         .current_dir(env!("CARGO_MANIFEST_DIR"))
         .args([
-            "--execute",
+            "--run",
             "SELECT 1 AS ratio, 0.5 AS low, 2 AS high",
             "--draw-to",
             path.to_str().unwrap(),

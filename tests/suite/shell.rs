@@ -11,7 +11,7 @@ fn shell(data_home: &std::path::Path) -> PtySession {
         .env("XDG_DATA_HOME", data_home)
         .env("TERM", "xterm");
     let mut p = spawn_command(c, Some(60_000)).unwrap();
-    p.exp_string("rates> ").unwrap();
+    p.exp_regex(crate::support::PROMPT).unwrap();
     p
 }
 
@@ -26,20 +26,20 @@ fn multi_line_queries_errors_help_and_history_across_sessions() {
     let home = temp_home("history");
     let mut p = shell(&home);
     p.send_line("SELECT COUNT(*) AS cells").unwrap();
-    p.exp_string("...> ").unwrap();
+    p.exp_string(crate::support::CONTINUATION).unwrap();
     p.send_line("FROM pipe_breaks;").unwrap();
     p.exp_string("1800").unwrap();
-    p.exp_string("rates> ").unwrap();
+    p.exp_regex(crate::support::PROMPT).unwrap();
     p.send_line("SELECT nope FROM pipe_breaks;").unwrap();
     p.exp_string("error:").unwrap();
-    p.exp_string("rates> ").unwrap();
-    p.send_line("~help poisson_fit").unwrap();
+    p.exp_regex(crate::support::PROMPT).unwrap();
+    p.send_line("~guide poisson_fit").unwrap();
     p.exp_string("poisson_fit(count, exposure, predictor").unwrap();
-    p.exp_string("rates> ").unwrap();
+    p.exp_regex(crate::support::PROMPT).unwrap();
     p.send_line("SELECT SUM(breaks) AS total_breaks FROM pipe_breaks;")
         .unwrap();
     p.exp_string("total_breaks").unwrap();
-    p.exp_string("rates> ").unwrap();
+    p.exp_regex(crate::support::PROMPT).unwrap();
     p.send_control('d').unwrap();
     p.exp_eof().unwrap();
     let history = std::fs::read_to_string(home.join("ratesheet/history.txt")).unwrap();
@@ -53,7 +53,7 @@ fn multi_line_queries_errors_help_and_history_across_sessions() {
     p.send("\x1b[A").unwrap();
     p.send_line("").unwrap();
     p.exp_string("total_breaks").unwrap();
-    p.exp_string("rates> ").unwrap();
+    p.exp_regex(crate::support::PROMPT).unwrap();
     p.send_control('d').unwrap();
     p.exp_eof().unwrap();
     std::fs::remove_dir_all(&home).ok();
@@ -69,10 +69,10 @@ fn ctrl_c_cancels_a_running_query_and_the_shell_goes_on() {
     p.exp_regex(crate::support::PROGRESS_LINE).unwrap();
     p.send_control('c').unwrap();
     p.exp_string("cancelled").unwrap();
-    p.exp_string("rates> ").unwrap();
+    p.exp_regex(crate::support::PROMPT).unwrap();
     p.send_line("SELECT 41 + 1 AS answer;").unwrap();
     p.exp_string("42").unwrap();
-    p.send_line("~quit").unwrap();
+    p.send_line("~leave").unwrap();
     p.exp_eof().unwrap();
     std::fs::remove_dir_all(&home).ok();
 }
@@ -85,7 +85,7 @@ fn tab_completes_table_names() {
     p.send("\t").unwrap();
     p.send_line(";").unwrap();
     p.exp_string("1800").unwrap();
-    p.send_line("~quit").unwrap();
+    p.send_line("~leave").unwrap();
     p.exp_eof().unwrap();
     std::fs::remove_dir_all(&home).ok();
 }
@@ -98,14 +98,14 @@ fn save_writes_the_last_result_and_never_overwrites_unasked() {
     let mut p = shell(&home);
     p.send_line("SELECT district, COUNT(*) AS cells FROM pipe_breaks GROUP BY district ORDER BY district;")
         .unwrap();
-    p.exp_string("rates> ").unwrap();
-    p.send_line(&format!("~save {target_text}")).unwrap();
+    p.exp_regex(crate::support::PROMPT).unwrap();
+    p.send_line(&format!("~export {target_text}")).unwrap();
     p.exp_string("wrote 10 rows").unwrap();
-    p.send_line(&format!("~save {target_text}")).unwrap();
+    p.send_line(&format!("~export {target_text}")).unwrap();
     p.exp_string("exists; add 'replace' to overwrite it").unwrap();
-    p.send_line(&format!("~save {target_text} replace")).unwrap();
+    p.send_line(&format!("~export {target_text} replace")).unwrap();
     p.exp_string("wrote 10 rows").unwrap();
-    p.send_line("~quit").unwrap();
+    p.send_line("~leave").unwrap();
     p.exp_eof().unwrap();
     let text = std::fs::read_to_string(&target).unwrap();
     assert!(text.starts_with("district,cells\nEast Meadows,180\n"), "{text}");
@@ -275,8 +275,45 @@ fn long_statements_show_a_progress_line_that_is_erased() {
         shown.contains("\r\x1b[2K"),
         "the progress line was not erased: {shown:?}"
     );
-    p.exp_string("rates> ").unwrap();
-    p.send_line("~quit").unwrap();
+    p.exp_regex(crate::support::PROMPT).unwrap();
+    p.send_line("~leave").unwrap();
+    p.exp_eof().unwrap();
+    std::fs::remove_dir_all(&home).ok();
+}
+
+/// The command set of our own: quoted paths with spaces, preferences said back, a suggestion
+/// for a habit from elsewhere, `done` after a statement without a table, and `~fits`.
+#[test]
+fn commands_take_quoted_paths_say_what_they_did_and_suggest_for_unknown_names() {
+    let home = temp_home("commands");
+    let spaced = home.join("LC 1977.csv");
+    std::fs::write(&spaced, "area,cases\nnorth,3\nsouth,4\n").unwrap();
+    let mut p = shell(&home);
+    p.send_line(&format!("~add '{}' lc", spaced.display())).unwrap();
+    p.exp_string("as lc").unwrap();
+    p.exp_regex(crate::support::PROMPT).unwrap();
+    p.send_line("SELECT SUM(cases) * 1000 AS k FROM lc;").unwrap();
+    p.exp_string("7000").unwrap();
+    p.exp_regex(crate::support::PROMPT).unwrap();
+    p.send_line("~save x.csv").unwrap();
+    p.exp_string("unknown command ~save; did you mean ~export?").unwrap();
+    p.exp_regex(crate::support::PROMPT).unwrap();
+    p.send_line("~prefer precision 3").unwrap();
+    p.exp_string("precision 3").unwrap();
+    p.exp_regex(crate::support::PROMPT).unwrap();
+    p.send_line("SET ratesheet.level = 0.9;").unwrap();
+    p.exp_string("done").unwrap();
+    p.exp_regex(crate::support::PROMPT).unwrap();
+    p.send_line(
+        "SELECT district, poisson_fit(breaks, km_years, material) AS fit FROM pipe_breaks WHERE district = 'Kiln Row' GROUP BY district;",
+    )
+    .unwrap();
+    p.exp_regex(crate::support::PROMPT).unwrap();
+    p.send_line("~fits").unwrap();
+    p.exp_string("district=Kiln Row: boundary estimate").unwrap();
+    p.exp_string("flagged: material=steel (boundary)").unwrap();
+    p.exp_regex(crate::support::PROMPT).unwrap();
+    p.send_line("~leave").unwrap();
     p.exp_eof().unwrap();
     std::fs::remove_dir_all(&home).ok();
 }

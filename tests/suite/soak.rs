@@ -46,10 +46,10 @@ fn a_thousand_mixed_statements_in_one_shell() {
         .env("TERM", "xterm");
     let mut p = spawn_command(c, Some(60_000)).unwrap();
     let pid = pid_with_env("XDG_DATA_HOME", &home);
-    p.exp_string("rates> ").unwrap();
-    for command in ["~format csv", "~timing off"] {
+    p.exp_regex(crate::support::PROMPT).unwrap();
+    for command in ["~prefer layout csv", "~prefer clock off"] {
         p.send_line(command).unwrap();
-        p.exp_string("rates> ").unwrap();
+        p.exp_regex(crate::support::PROMPT).unwrap();
     }
     // The number of districts whose fit is "ok", as the first run of the fit statement gives it.
     let fit_sql = "SELECT 'fits-' || CAST(COUNT(*) AS VARCHAR) AS r FROM (SELECT district, \
@@ -57,7 +57,7 @@ fn a_thousand_mixed_statements_in_one_shell() {
                    GROUP BY district) WHERE fit.status = 'ok';";
     p.send_line(fit_sql).unwrap();
     let (_, first_fit) = p.exp_regex("fits-[0-9]+").unwrap();
-    p.exp_string("rates> ").unwrap();
+    p.exp_regex(crate::support::PROMPT).unwrap();
 
     let (mut good, mut failed, mut cancelled, mut fits, mut commands) = (0, 0, 0, 1, 0);
     let mut rss_after_warm_up = 0;
@@ -87,7 +87,7 @@ fn a_thousand_mixed_statements_in_one_shell() {
                 failed += 1;
             }
             5 => {
-                p.send_line("~tables").unwrap();
+                p.send_line("~sources").unwrap();
                 p.exp_string("pipe_breaks").unwrap();
                 commands += 1;
             }
@@ -99,7 +99,7 @@ fn a_thousand_mixed_statements_in_one_shell() {
                 good += 1;
             }
         }
-        p.exp_string("rates> ").unwrap();
+        p.exp_regex(crate::support::PROMPT).unwrap();
         if i == 100 {
             rss_after_warm_up = resident_kib(pid);
         }
@@ -108,7 +108,7 @@ fn a_thousand_mixed_statements_in_one_shell() {
     p.send_line("SELECT SUM(breaks) * 0 + 12345 AS still_here FROM pipe_breaks;")
         .unwrap();
     p.exp_string("12345").unwrap();
-    p.send_line("~quit").unwrap();
+    p.send_line("~leave").unwrap();
     p.exp_eof().unwrap();
     std::fs::remove_dir_all(&home).ok();
     eprintln!(

@@ -119,9 +119,17 @@ impl Seeded {
     }
 }
 
+/// The shell's prompt (`shell::prompt`): the next statement's number and the marker '▸'.
+/// rexpect reads the terminal byte by byte as Latin-1, so the marker's UTF-8 bytes E2 96 B8
+/// appear as three characters.
+pub const PROMPT: &str = "[0-9]+ \u{e2}\u{96}\u{b8} ";
+
+/// The continuation prompt's bar '┆' (UTF-8 E2 94 86) as rexpect sees it.
+pub const CONTINUATION: &str = "\u{e2}\u{94}\u{86} ";
+
 /// A progress line (src/cli/progress.rs `progress_text`): "N rows read…", "all N rows read, …"
 /// or "reading N of M rows (P%)…"; shown once a statement has run for `QUIET_PERIOD`. Seeing it
 /// means the shell has read the statement and is running it, with its Ctrl-C handler in
-/// place: tests wait for it instead of sleeping a fixed time. The timing line "(N rows in X s)"
-/// and the echoed statements do not match it.
+/// place: tests wait for it instead of sleeping a fixed time. The footer "↳ N rows · X ms" and the
+/// echoed statements do not match it.
 pub const PROGRESS_LINE: &str = r"(rows read|of [0-9.]+[kMG]? rows \()";

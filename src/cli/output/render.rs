@@ -1,7 +1,8 @@
 //! Rendering of result batches: an aligned text table (our own layout), CSV, JSON lines and
 //! Markdown.
 //!
-//! Text layout: a header, a rule of '─' under each column, then rows; numbers right-aligned
+//! Text layout (our "ledger"): a header, one heavy rule across the table, rows grouped by five
+//! with a light dotted rule between groups; numbers right-aligned
 //! with a chosen number of significant digits and lined up on the decimal point, p-values in
 //! three significant digits however small, NULL as `∅`, struct columns spread into one column
 //! per field, headers without the engine's qualifiers where unambiguous,
@@ -247,7 +248,9 @@ fn text_table(batches: &[RecordBatch], style: &Style) -> Result<String> {
         align_decimals(&mut rows, j);
     }
     let markdown = style.format == Format::Markdown;
-    let fold = style.width.filter(|_| !markdown);
+    // Plan text (EXPLAIN) is never shortened or folded: every line of it matters.
+    let plan = full_names.iter().any(|n| n == "plan_type") && full_names.iter().any(|n| n == "plan");
+    let fold = style.width.filter(|_| !markdown && !plan);
     if let Some(w) = fold {
         shorten_text_cells(&mut rows, (w / 2).max(24));
     }
@@ -282,19 +285,18 @@ fn text_table(batches: &[RecordBatch], style: &Style) -> Result<String> {
             ));
         }
         out.push_str(&line(block.iter().map(|&j| pad_right(&names[j], widths[j])).collect()));
-        out.push_str(&line(
-            block
-                .iter()
-                .map(|&j| {
-                    if markdown {
-                        "-".repeat(widths[j])
-                    } else {
-                        "─".repeat(widths[j])
-                    }
-                })
-                .collect(),
-        ));
-        for r in &rows {
+        // Markdown: the standard delimiter row. Text: one heavy rule across the whole table,
+        // and a light dotted rule after every fifth row, as a ledger groups its lines.
+        let table_width: usize = block.iter().map(|&j| widths[j]).sum::<usize>() + 2 * block.len().saturating_sub(1);
+        if markdown {
+            out.push_str(&line(block.iter().map(|&j| "-".repeat(widths[j])).collect()));
+        } else {
+            out.push_str(&format!("{}\n", "━".repeat(table_width)));
+        }
+        for (k, r) in rows.iter().enumerate() {
+            if !markdown && k > 0 && k % 5 == 0 {
+                out.push_str(&format!("{}\n", "┈".repeat(table_width)));
+            }
             out.push_str(&line(
                 block
                     .iter()
@@ -385,6 +387,72 @@ const CARD_FIELDS: &[TermField] = &[
 ];
 
 /// For each fit cell: a heading naming the row (its other columns) and the fit's term table.
+/// One line per fit in `batches` (for `~fits`): the row's label, status, rows used,
+/// dispersion, overdispersion p-value and the terms that carry a flag. `None` without fits.
+pub fn fit_overview(batches: &[RecordBatch], digits: usize) -> Option<String> {
+    let mut out = String::new();
+    let options = FormatOptions::default().with_null(NULL_MARK);
+    for b in batches {
+        let fits: Vec<usize> = (0..b.num_columns())
+            .filter(|&j| b.column(j).as_struct_opt().is_some_and(is_fit))
+            .collect();
+        let fmts = formatters(b, &options).ok()?;
+        let schema = b.schema();
+        for r in 0..b.num_rows() {
+            let label: Vec<String> = (0..b.num_columns())
+                .filter(|j| {
+                    !fits.contains(j) && !matches!(b.column(*j).data_type(), DataType::Struct(_) | DataType::List(_))
+                })
+                .map(|j| format!("{}={}", schema.field(j).name(), fmts[j].value(r)))
+                .collect();
+            for &j in &fits {
+                let reader = FitReader::of(b.column(j).as_struct())?;
+                if reader.is_null(r) {
+                    continue;
+                }
+                let number = |f: FitField| {
+                    reader
+                        .float(f, r)
+                        .map_or_else(|| NULL_MARK.to_string(), |v| format_number(v, digits))
+                };
+                let flagged: Vec<String> = reader
+                    .term_range(r)
+                    .filter_map(|i| {
+                        let flag = reader.term_text(TermField::Flag, i)?;
+                        Some(format!(
+                            "{} ({flag})",
+                            reader.term_text(TermField::Term, i).unwrap_or("?")
+                        ))
+                    })
+                    .collect();
+                out.push_str(&format!(
+                    "{}{}: {} · {} rows · dispersion {} · overdispersion p {}{}\n",
+                    label.join(", "),
+                    if fits.len() > 1 {
+                        format!(" {}", schema.field(j).name())
+                    } else {
+                        String::new()
+                    },
+                    reader.text(FitField::Status, r).unwrap_or_default(),
+                    reader
+                        .uint(FitField::NUsed, r)
+                        .map_or_else(|| NULL_MARK.into(), |n| n.to_string()),
+                    number(FitField::Dispersion),
+                    reader
+                        .float(FitField::OverdispersionP, r)
+                        .map_or_else(|| NULL_MARK.to_string(), format_p),
+                    if flagged.is_empty() {
+                        String::new()
+                    } else {
+                        format!(" · flagged: {}", flagged.join(", "))
+                    }
+                ));
+            }
+        }
+    }
+    (!out.is_empty()).then_some(out)
+}
+
 fn fit_cards(batches: &[RecordBatch], style: &Style) -> Result<String> {
     let mut out = String::new();
     let options = FormatOptions::default().with_null(NULL_MARK);
