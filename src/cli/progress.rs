@@ -33,17 +33,52 @@ fn scans(plan: &Arc<dyn ExecutionPlan>) -> Vec<Arc<dyn ExecutionPlan>> {
     plan.children().into_iter().flat_map(scans).collect()
 }
 
-/// Rows the scans will read, when every scan knows it (Parquet metadata).
+/// The file scans among the leaves (other leaves, such as literal rows, read no files).
+fn file_scans(leaves: &[Arc<dyn ExecutionPlan>]) -> Vec<Arc<dyn ExecutionPlan>> {
+    let files: Vec<_> = leaves
+        .iter()
+        .filter(|l| l.downcast_ref::<DataSourceExec>().is_some())
+        .cloned()
+        .collect();
+    if files.is_empty() { leaves.to_vec() } else { files }
+}
+
+/// Rows the scans will read, when every scan knows it: the plan's statistics, or else the row
+/// counts in the footers of local Parquet files (DataFusion 55 may leave a scan's statistics
+/// absent until it runs). CSV files give no total.
 fn total_rows(scans: &[Arc<dyn ExecutionPlan>]) -> Option<usize> {
     let mut total = 0;
     for s in scans {
-        // The plan-level statistics of a scan are its files' metadata totals; this one-node
-        // question needs none of the newer statistics framework.
         #[allow(deprecated)]
         let stats = s.partition_statistics(None);
-        match stats.ok()?.num_rows {
-            Precision::Exact(n) | Precision::Inexact(n) => total += n,
-            Precision::Absent => return None,
+        match stats.ok().map(|s| s.num_rows) {
+            Some(Precision::Exact(n) | Precision::Inexact(n)) => total += n,
+            _ => total += footer_rows(s)?,
+        }
+    }
+    Some(total)
+}
+
+/// Rows in the Parquet footers of a scan's files (local files only).
+fn footer_rows(scan: &Arc<dyn ExecutionPlan>) -> Option<usize> {
+    use datafusion::parquet::file::metadata::ParquetMetaDataReader;
+    let source = scan.downcast_ref::<DataSourceExec>()?;
+    let config = source.data_source().downcast_ref::<FileScanConfig>()?;
+    let mut total = 0usize;
+    // A file split into byte ranges across partitions appears once per range: count it once.
+    let mut seen = std::collections::HashSet::new();
+    for group in &config.file_groups {
+        for f in group.files() {
+            let path = format!("/{}", f.object_meta.location);
+            if !path.to_ascii_lowercase().ends_with(".parquet") {
+                return None;
+            }
+            if !seen.insert(path.clone()) {
+                continue;
+            }
+            let file = std::fs::File::open(&path).ok()?;
+            let meta = ParquetMetaDataReader::new().parse_and_finish(&file).ok()?;
+            total += usize::try_from(meta.file_metadata().num_rows()).ok()?;
         }
     }
     Some(total)
@@ -64,9 +99,28 @@ fn short_count(n: usize) -> String {
     }
 }
 
-/// The progress text for `read` of `total` rows after `elapsed`.
-pub fn progress_text(read: usize, total: Option<usize>, elapsed: Duration) -> String {
+/// Groups handed to the fit and fitted since the statement started.
+#[derive(Debug, Clone, Copy, Default, PartialEq)]
+pub struct Fitting {
+    pub started: usize,
+    pub fitted: usize,
+}
+
+/// The progress text for `read` of `total` rows after `elapsed`; once groups are being fitted,
+/// how many of those handed over so far are done.
+pub fn progress_text(read: usize, total: Option<usize>, fitting: Fitting, elapsed: Duration) -> String {
     let secs = elapsed.as_secs_f64();
+    if fitting.started > 0 {
+        let rows = match total {
+            Some(t) if read >= t => format!("all {} rows read", short_count(t)),
+            _ => format!("{} rows read", short_count(read)),
+        };
+        return format!(
+            "{rows}; fitting: {} of {} groups… {secs:.1} s",
+            short_count(fitting.fitted),
+            short_count(fitting.started)
+        );
+    }
     match total {
         Some(t) if t > 0 && read >= t => format!("all {} rows read, computing… {secs:.1} s", short_count(t)),
         Some(t) if t > 0 => format!(
@@ -101,12 +155,21 @@ pub async fn collect_with_progress(
     let (logical, plan) = planning.await?;
     hints.after_planning(&logical);
     let leaves = scans(&plan);
+    let files = file_scans(&leaves);
+    let progress = &crate::sql::model::evaluate::FIT_PROGRESS;
+    let fit_counts = || {
+        (
+            progress.groups_started.load(std::sync::atomic::Ordering::Relaxed),
+            progress.groups_fitted.load(std::sync::atomic::Ordering::Relaxed),
+        )
+    };
+    let at_start = fit_counts();
     let run = super::guard::without_panics("the query", collect(plan, ctx.task_ctx()));
     let explain = |e| naming_files(naming_limit(e, ctx), &leaves);
     if !show {
         return run.await.map_err(explain);
     }
-    let total = total_rows(&leaves);
+    let total = total_rows(&files);
     let start = Instant::now();
     tokio::pin!(run);
     let mut line = ProgressLine { shown: false };
@@ -115,7 +178,9 @@ pub async fn collect_with_progress(
         tokio::select! {
             r = &mut run => break r,
             _ = ticker.tick() => {
-                line.show(&progress_text(rows_read(&leaves), total, start.elapsed()));
+                let now = fit_counts();
+                let fitting = Fitting { started: now.0 - at_start.0, fitted: now.1 - at_start.1 };
+                line.show(&progress_text(rows_read(&files), total, fitting, start.elapsed()));
             }
         }
     };
@@ -206,5 +271,53 @@ impl Drop for ProgressLine {
             let _ = write!(err, "\r\x1b[2K");
             let _ = err.flush();
         }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn the_line_moves_from_reading_to_fitting() {
+        let t = Duration::from_millis(2400);
+        let none = Fitting::default();
+        assert_eq!(
+            progress_text(1_230_000, Some(5_400_000), none, t),
+            "reading 1.23M of 5.40M rows (23%)… 2.4 s"
+        );
+        assert_eq!(
+            progress_text(5_400_000, Some(5_400_000), none, t),
+            "all 5.40M rows read, computing… 2.4 s"
+        );
+        let fitting = Fitting {
+            started: 1000,
+            fitted: 120,
+        };
+        assert_eq!(
+            progress_text(5_400_000, Some(5_400_000), fitting, t),
+            "all 5.40M rows read; fitting: 120 of 1.0k groups… 2.4 s"
+        );
+        assert_eq!(
+            progress_text(42, None, fitting, t),
+            "42 rows read; fitting: 120 of 1.0k groups… 2.4 s"
+        );
+    }
+
+    /// A local Parquet file's rows come from its footer, once even when the scan reads it in
+    /// several byte ranges.
+    #[tokio::test]
+    async fn parquet_totals_come_from_the_footer() {
+        let ctx = SessionContext::new_with_config(datafusion::prelude::SessionConfig::new().with_target_partitions(4));
+        let path = concat!(env!("CARGO_MANIFEST_DIR"), "/demo-parquet/pipe_breaks.parquet");
+        ctx.register_parquet("p", path, Default::default()).await.unwrap();
+        let plan = ctx
+            .sql("SELECT SUM(breaks) FROM p")
+            .await
+            .unwrap()
+            .create_physical_plan()
+            .await
+            .unwrap();
+        assert_eq!(total_rows(&file_scans(&scans(&plan))), Some(1800));
     }
 }

@@ -4,6 +4,7 @@
 
 use datafusion::arrow::array::StructArray;
 use datafusion::error::{DataFusionError, Result};
+use std::sync::atomic::{AtomicUsize, Ordering};
 
 use super::decode::Dictionary;
 use super::fields::{DesignEntry, FitColumns, GroupReport, PredictorInfo};
@@ -27,13 +28,29 @@ pub fn evaluate_groups<B: GroupBuffer>(buffer: &B) -> Result<StructArray> {
     let mut out = FitColumns::new();
     let (offsets, mut order) = buffer.buckets();
     let keys = buffer.hash_keys();
+    FIT_PROGRESS
+        .groups_started
+        .fetch_add(buffer.num_groups(), Ordering::Relaxed);
     for g in 0..buffer.num_groups() {
         let items = &mut order[offsets[g]..offsets[g + 1]];
         buffer.sort_canonically(items, &keys);
         fit_group(&buffer.group_data(g, items), &mut out)?;
+        FIT_PROGRESS.groups_fitted.fetch_add(1, Ordering::Relaxed);
     }
     Ok(out.finish())
 }
+
+/// Process-wide counts of groups handed to the fit and fitted, for progress displays: a reader
+/// takes the difference between two moments (the counts only grow).
+pub struct FitProgress {
+    pub groups_started: AtomicUsize,
+    pub groups_fitted: AtomicUsize,
+}
+
+pub static FIT_PROGRESS: FitProgress = FitProgress {
+    groups_started: AtomicUsize::new(0),
+    groups_fitted: AtomicUsize::new(0),
+};
 
 /// Per-group factor levels: the labels that occur, sorted, with the reference first.
 struct GroupFactor {
