@@ -577,8 +577,10 @@ pub fn footer(batches: &[RecordBatch], elapsed: std::time::Duration) -> String {
     format!("↳ {rows} row{} · {time}", if rows == 1 { "" } else { "s" })
 }
 
-/// Prints the command list and the SQL functions, or one function's documentation.
+/// Prints the command list and the SQL functions, or one function's documentation, wrapped to
+/// the terminal's width at word boundaries (nothing is cut).
 pub fn print_help(function: Option<&str>) {
+    let width = super::output::terminal_width().unwrap_or(100).max(40);
     let udafs = crate::sql::aggregate_functions();
     let udfs = crate::sql::scalar_functions();
     let docs: Vec<(String, &datafusion::logical_expr::Documentation)> = udafs
@@ -590,33 +592,63 @@ pub fn print_help(function: Option<&str>) {
     match function {
         Some(name) => match docs.iter().find(|(n, _)| n == name) {
             Some((_, d)) => {
-                println!("{}\n\n{}\n", d.syntax_example, d.description);
+                println!("{}\n", d.syntax_example);
+                println!("{}\n", wrap(&d.description, width, 0));
+                let arg_w = d.arguments.iter().flatten().map(|(a, _)| a.len()).max().unwrap_or(0);
                 for (arg, text) in d.arguments.iter().flatten() {
-                    println!("  {arg:<12} {text}");
+                    let body = wrap(text, width, arg_w + 4);
+                    println!("  {arg:<arg_w$}  {}", body.trim_start());
                 }
                 if let Some(ex) = &d.sql_example {
                     println!("\nexample:\n{ex}");
                 }
             }
-            None => eprintln!("no ratesheet function named {name}"),
+            None => eprintln!("no ratesheet function named {name}; {PREFIX}guide lists them"),
         },
         None => {
             println!("shell commands:");
             for c in COMMANDS {
-                println!("  {PREFIX}{:<28} {}", format!("{} {}", c.name, c.args), c.help);
+                println!("{}", format!("  {PREFIX}{} {}", c.name, c.args).trim_end());
+                println!("{}", wrap(c.help, width, 6));
             }
             println!("\nSQL functions ({PREFIX}guide NAME for details):");
-            for (n, d) in &docs {
-                println!("  {:<50} {}", d.syntax_example, first_sentence(&d.description));
-                let _ = n;
+            for (_, d) in &docs {
+                println!("  {}", d.syntax_example);
+                println!("{}", wrap(first_sentence(&d.description), width, 6));
             }
-            println!("\n{CAUTION}");
+            println!("\n{}", wrap(CAUTION, width, 0));
         }
     }
 }
 
+/// `text` wrapped at word boundaries to `width` columns, every line indented by `indent`.
+pub fn wrap(text: &str, width: usize, indent: usize) -> String {
+    let room = width.saturating_sub(indent).max(20);
+    let pad = " ".repeat(indent);
+    let mut lines: Vec<String> = Vec::new();
+    let mut line = String::new();
+    for word in text.split_whitespace() {
+        if !line.is_empty() && line.chars().count() + 1 + word.chars().count() > room {
+            lines.push(format!("{pad}{line}"));
+            line.clear();
+        }
+        if !line.is_empty() {
+            line.push(' ');
+        }
+        line.push_str(word);
+    }
+    if !line.is_empty() {
+        lines.push(format!("{pad}{line}"));
+    }
+    lines.join("\n")
+}
+
+/// The first sentence of a description (up to the first ". "), whole.
 fn first_sentence(s: &str) -> &str {
-    s.split(". ").next().unwrap_or(s)
+    match s.find(". ") {
+        Some(i) => &s[..=i],
+        None => s,
+    }
 }
 
 fn history_path() -> Option<std::path::PathBuf> {
@@ -662,5 +694,19 @@ mod tests {
         assert_eq!(suggestion("zzz"), "");
         assert_eq!(prompt(12, false), "12 ▸ ");
         assert_eq!(prompt(12, true), "   ┆ ");
+    }
+
+    #[test]
+    fn wrapping_breaks_at_spaces_and_keeps_every_word() {
+        let text = "Returns {rate, low, high}: events / exposure with its exact Poisson interval.";
+        let w = wrap(text, 30, 4);
+        assert!(
+            w.lines().all(|l| l.chars().count() <= 30 && l.starts_with("    ")),
+            "{w}"
+        );
+        assert_eq!(
+            w.split_whitespace().collect::<Vec<_>>(),
+            text.split_whitespace().collect::<Vec<_>>()
+        );
     }
 }
