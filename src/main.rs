@@ -189,7 +189,11 @@ async fn main() -> ExitCode {
                 last = batches;
             }
             Err(e) => {
-                eprintln!("error in statement {}: {e}", k + 1);
+                eprintln!(
+                    "error in statement {}: {}",
+                    k + 1,
+                    ratesheet::cli::progress::describe(&e)
+                );
                 return ExitCode::FAILURE;
             }
         }
@@ -268,7 +272,7 @@ async fn run_demo(ctx: &datafusion::prelude::SessionContext, digits: usize, hint
                         last = batches;
                     }
                     Err(e) => {
-                        eprintln!("error: {e}");
+                        eprintln!("error: {}", ratesheet::cli::progress::describe(&e));
                         return ExitCode::FAILURE;
                     }
                 },

@@ -188,6 +188,52 @@ pub async fn collect_with_progress(
     result.map_err(explain)
 }
 
+/// An error as one readable line of ours: the root cause without the engine's wrappers
+/// (`Optimizer rule ... failed`, `caused by`), without repeated kind prefixes (`Execution
+/// error: Execution error:`), without a backtrace. Messages of our functions (they start with
+/// the function's name) read as they were written; other engine messages keep their text once.
+pub fn describe(e: &DataFusionError) -> String {
+    let root = e.find_root();
+    let text = match root {
+        DataFusionError::Execution(m)
+        | DataFusionError::Plan(m)
+        | DataFusionError::Configuration(m)
+        | DataFusionError::NotImplemented(m)
+        | DataFusionError::ResourcesExhausted(m) => m.clone(),
+        other => other.strip_backtrace(),
+    };
+    let mut text = text.trim().to_string();
+    let prefixes = [
+        "Execution error: ",
+        "Error during planning: ",
+        "External error: ",
+        "This feature is not implemented: ",
+        "Invalid or Unsupported Configuration: ",
+    ];
+    // An argument refused by one of our functions arrives inside the engine's coercion
+    // message: keep ours alone.
+    if let Some(i) = text.find("coercion failed with: ") {
+        text = text[i + "coercion failed with: ".len()..].to_string();
+        if let Some(j) = text.find(". No function matches") {
+            text.truncate(j);
+        }
+    }
+    while let Some(p) = prefixes.iter().find(|p| text.starts_with(**p)) {
+        text = text[p.len()..].to_string();
+    }
+    text
+}
+
+/// Whether an error is one of our scalar functions refusing its arguments (its message starts
+/// with the function's name): about the call, not the files. A fit refusing a row's value
+/// keeps the file context, since the value came from a file.
+fn from_our_scalar_function(e: &DataFusionError) -> bool {
+    let text = describe(e);
+    crate::sql::scalar_functions()
+        .iter()
+        .any(|f| text.starts_with(&format!("{}:", f.name())) || text.starts_with(&format!("{} ", f.name())))
+}
+
 /// Adds the session's memory limit to an out-of-memory error (DataFusion names the bytes it
 /// could not reserve, not the limit the user set).
 fn naming_limit(e: DataFusionError, ctx: &SessionContext) -> DataFusionError {
@@ -246,6 +292,12 @@ fn naming_files(e: DataFusionError, leaves: &[Arc<dyn ExecutionPlan>]) -> DataFu
         // Memory errors keep their kind (callers tell them apart), also when they arrive
         // wrapped by the task that hit them.
         e if matches!(e.find_root(), DataFusionError::ResourcesExhausted(_)) => e,
+        // Our functions' refusals and planning errors are not about the files.
+        e if from_our_scalar_function(&e)
+            || matches!(e.find_root(), DataFusionError::Plan(_) | DataFusionError::SQL(..)) =>
+        {
+            e
+        }
         other => DataFusionError::Execution(format!("{} (while reading {reading})", other.strip_backtrace())),
     }
 }

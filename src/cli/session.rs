@@ -82,7 +82,7 @@ fn format_of(path: &str) -> Result<&'static str> {
         .as_deref()
     {
         Some("parquet") | Some("parq") => Some("parquet"),
-        Some("csv") => Some("csv"),
+        Some("csv") | Some("tsv") => Some("csv"),
         Some("xlsx") => Some("xlsx"),
         _ => None,
     };
@@ -205,10 +205,34 @@ async fn open_unguarded(ctx: &SessionContext, path: &str, name: Option<&str>) ->
                     delimiter_name(delimiter)
                 );
             }
-            let options = CsvReadOptions::new().file_extension(".csv").delimiter(delimiter);
-            ctx.register_csv(name.as_str(), path, options)
-                .await
-                .map_err(with_path)?
+            let ext = if path.to_ascii_lowercase().ends_with(".tsv") {
+                ".tsv"
+            } else {
+                ".csv"
+            };
+            let options = CsvReadOptions::new().file_extension(ext).delimiter(delimiter);
+            let conversions = number_columns(&files, delimiter);
+            if conversions.is_empty() {
+                ctx.register_csv(name.as_str(), path, options)
+                    .await
+                    .map_err(with_path)?
+            } else {
+                let df = ctx.read_csv(path, options).await.map_err(with_path)?;
+                let exprs: Vec<datafusion::prelude::Expr> = df
+                    .schema()
+                    .fields()
+                    .iter()
+                    .map(|f| match conversions.iter().find(|c| c.column == *f.name()) {
+                        Some(_) if !f.data_type().is_numeric() => text_to_number(f.name()),
+                        _ => Ok(datafusion::prelude::ident(f.name())),
+                    })
+                    .collect::<Result<_>>()?;
+                for c in &conversions {
+                    eprintln!("note: {path}: column {} {}; read as numbers", c.column, c.what);
+                }
+                ctx.register_table(name.as_str(), df.select(exprs).map_err(with_path)?.into_view())
+                    .map_err(with_path)?;
+            }
         }
     }
     // Reading the schema is not enough to find a broken file: touch the table once.
@@ -334,4 +358,103 @@ fn same_parquet_schemas(files: &[std::path::PathBuf]) -> Result<()> {
         }
     }
     Ok(())
+}
+
+/// Text that stands for a missing number in CSV extracts.
+const MISSING_MARKERS: &[&str] = &["", "NA", "N/A", "na", "n/a", ".", "-"];
+
+/// A CSV column of numbers written as text.
+#[derive(Debug, Clone, PartialEq)]
+pub struct NumberColumn {
+    pub column: String,
+    /// What was found, for the note: decimal commas and/or missing-value markers.
+    pub what: String,
+}
+
+/// The columns of the first file whose values (the first 2,000 rows) are all numbers written
+/// with a decimal comma (when the separator is not a comma) or a decimal point, or missing
+/// markers (`NA`, `N/A`, `.`, `-`, empty), with at least one number and at least one decimal
+/// comma or non-empty marker: the engine's CSV reader would read them as text (it has no
+/// decimal-comma setting). Parsing is the engine's CSV reader with every column as text.
+pub fn number_columns(files: &[std::path::PathBuf], delimiter: u8) -> Vec<NumberColumn> {
+    use datafusion::arrow::array::{Array, AsArray};
+    use datafusion::arrow::datatypes::{DataType, Field, Schema};
+    let Some(first) = files.first() else { return Vec::new() };
+    let header = match std::fs::read_to_string(first) {
+        Ok(t) => t.lines().next().unwrap_or("").to_string(),
+        Err(_) => return Vec::new(),
+    };
+    let names: Vec<String> = header
+        .trim_end_matches('\r')
+        .split(delimiter as char)
+        .map(|h| h.trim().trim_matches('"').to_string())
+        .collect();
+    let schema = Arc::new(Schema::new(
+        names
+            .iter()
+            .map(|n| Field::new(n, DataType::Utf8, true))
+            .collect::<Vec<_>>(),
+    ));
+    let Ok(file) = std::fs::File::open(first) else {
+        return Vec::new();
+    };
+    let Ok(reader) = datafusion::arrow::csv::ReaderBuilder::new(schema)
+        .with_header(true)
+        .with_delimiter(delimiter)
+        .with_batch_size(2000)
+        .build(file)
+    else {
+        return Vec::new();
+    };
+    let Some(Ok(batch)) = reader.into_iter().next() else {
+        return Vec::new();
+    };
+    let number = |v: &str| {
+        v.starts_with(|c: char| c.is_ascii_digit() || c == '-' || c == '+' || c == '.') && v.parse::<f64>().is_ok()
+    };
+    let mut out = Vec::new();
+    for (j, name) in names.iter().enumerate() {
+        let values = batch.column(j).as_string::<i32>();
+        let (mut numbers, mut commas, mut markers, mut other) = (0, 0, 0, 0);
+        for i in 0..values.len() {
+            let v = if values.is_null(i) { "" } else { values.value(i).trim() };
+            if MISSING_MARKERS.contains(&v) {
+                markers += usize::from(!v.is_empty());
+            } else if number(v) {
+                numbers += 1;
+            } else if delimiter != b','
+                && v.matches(',').count() == 1
+                && !v.contains('.')
+                && number(&v.replace(',', "."))
+            {
+                numbers += 1;
+                commas += 1;
+            } else {
+                other += 1;
+            }
+        }
+        if other == 0 && numbers > 0 && (commas > 0 || markers > 0) {
+            let what = match (commas > 0, markers > 0) {
+                (true, true) => "has decimal commas and missing-value markers (NA, ., -)",
+                (true, false) => "has decimal commas",
+                _ => "has missing-value markers (NA, ., -), read as NULL",
+            };
+            out.push(NumberColumn {
+                column: name.clone(),
+                what: what.to_string(),
+            });
+        }
+    }
+    out
+}
+
+/// `column` (text) as Float64: markers become NULL, a decimal comma a point.
+fn text_to_number(column: &str) -> Result<datafusion::prelude::Expr> {
+    use datafusion::prelude::{Expr, cast, ident, lit, when};
+    let trimmed = datafusion::functions::expr_fn::btrim(vec![ident(column)]);
+    let markers: Vec<Expr> = MISSING_MARKERS.iter().map(|m| lit(*m)).collect();
+    let is_missing = trimmed.clone().in_list(markers, false).or(ident(column).is_null());
+    let value = datafusion::functions::expr_fn::replace(trimmed, lit(","), lit("."));
+    let converted = when(is_missing, lit(datafusion::common::ScalarValue::Utf8(None))).otherwise(value)?;
+    Ok(cast(converted, datafusion::arrow::datatypes::DataType::Float64).alias(column))
 }

@@ -405,7 +405,7 @@ impl Shell {
                 }
                 self.last = batches;
             }
-            Ok(Err(e)) => eprintln!("error: {e}"),
+            Ok(Err(e)) => eprintln!("error: {}", super::progress::describe(&e)),
             Err(e) => eprintln!("error: the statement stopped: {e}"),
         }
         true

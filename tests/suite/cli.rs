@@ -304,3 +304,95 @@ fn whole_number_division_gets_a_hint_once() {
     assert!(out.starts_with("rate\n10.2176"), "{out}");
     assert!(!err.contains("hint:"), "{err}");
 }
+
+/// Real-world CSV: decimal commas and missing-value markers in numeric columns are read as
+/// numbers (with a note), `.tsv` opens as tab-separated, and a fit on a text column says what
+/// to do instead of the engine's coercion message; errors read as one sentence of ours.
+#[test]
+fn decimal_commas_markers_and_tsv_files_read_as_numbers() {
+    let dir = std::env::temp_dir().join(format!("ratesheet-realworld-{}", std::process::id()));
+    std::fs::create_dir_all(&dir).unwrap();
+    let csv = dir.join("cases.csv");
+    std::fs::write(
+        &csv,
+        "area;cases;pop\nnorth;2520,5;1000\nsouth;NA;2000\neast;12;1500,25\nwest;.;10\n",
+    )
+    .unwrap();
+    let (code, out, err) = run(&[
+        csv.to_str().unwrap(),
+        "--run",
+        "SELECT SUM(cases) AS c, SUM(pop) AS p, COUNT(cases) AS n FROM cases",
+        "--format",
+        "csv",
+    ]);
+    assert_eq!(code, 0, "{err}");
+    assert_eq!(out, "c,p,n\n2532.5,4510.25,2\n");
+    assert!(
+        err.contains("column cases has decimal commas and missing-value markers")
+            && err.contains("column pop has decimal commas"),
+        "{err}"
+    );
+    let tsv = dir.join("rates.tsv");
+    std::fs::write(&tsv, "a\tb\n1\t2\n").unwrap();
+    let (code, out, _) = run(&[
+        tsv.to_str().unwrap(),
+        "--run",
+        "SELECT a + b AS s FROM rates",
+        "--format",
+        "csv",
+    ]);
+    assert_eq!((code, out.as_str()), (0, "s\n3\n"));
+    let text = dir.join("text.csv");
+    std::fs::write(&text, "area,cases,pop\nnorth,many,1000\n").unwrap();
+    let (code, _, err) = run(&[
+        text.to_str().unwrap(),
+        "--run",
+        "SELECT poisson_fit(cases, pop) FROM text",
+    ]);
+    assert_eq!(code, 1);
+    assert!(
+        err.starts_with("error in statement 1: poisson_fit: count must be numeric, got Utf8 (text:"),
+        "{err}"
+    );
+    assert!(
+        !err.contains("Candidate functions") && !err.contains("Error during planning"),
+        "{err}"
+    );
+    let (_, _, err) = run(&[
+        "--run",
+        "SELECT poisson_fit(y, 1.0, 'colour=red') FROM (VALUES (1)) AS t(y)",
+    ]);
+    assert!(
+        err.starts_with("error in statement 1: poisson_fit: unknown option 'colour'"),
+        "{err}"
+    );
+    assert!(
+        !err.contains("Optimizer rule") && !err.contains("(while reading"),
+        "{err}"
+    );
+    std::fs::remove_dir_all(&dir).ok();
+}
+
+#[test]
+fn digits_and_memory_limits_are_checked_and_units_accepted() {
+    let (code, _, err) = run(&["--digits", "0", "--run", "SELECT 1"]);
+    assert_eq!(code, 2, "{err}");
+    let (code, _, err) = run(&["--digits", "40", "--run", "SELECT 1"]);
+    assert_eq!(code, 2, "{err}");
+    for limit in ["2GB", "1.5GiB", "512M", "512mib"] {
+        let (code, out, err) = run(&[
+            "--memory-limit",
+            limit,
+            "--run",
+            "SELECT 41 + 1 AS a",
+            "--format",
+            "csv",
+        ]);
+        assert_eq!((code, out.as_str()), (0, "a\n42\n"), "{limit}: {err}");
+    }
+    let (code, _, err) = run(&["--memory-limit", "2 parsecs", "--run", "SELECT 1"]);
+    assert!(
+        code != 0 && err.contains("expected a size such as 512M, 4G, 2GB or 1.5GiB"),
+        "{err}"
+    );
+}

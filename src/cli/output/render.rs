@@ -169,10 +169,20 @@ fn cell(col: &ArrayRef, fmt: &ArrayFormatter<'_>, name: &str, r: usize, digits: 
 /// Column headers without the qualifiers the engine adds (`fit[dispersion]` -> `dispersion`,
 /// `t.t[term]` -> `term`, `r.low` -> `low`), each only where the short name is unique.
 fn short_headers(names: &[String]) -> Vec<String> {
+    // Only field accesses (`x[field]`) and plain qualified names (`t.x`, `r.low`) are
+    // shortened; an expression such as `t.a + t.b` keeps its text.
     let short = |n: &str| -> String {
-        let n = n.trim_end_matches(']');
-        let tail = n.rsplit(['[', '.']).next().unwrap_or(n);
-        tail.to_string()
+        if let Some(inner) = n.strip_suffix(']') {
+            if let Some(i) = inner.rfind('[') {
+                return inner[i + 1..].to_string();
+            }
+        }
+        let plain = n.chars().all(|c| c.is_alphanumeric() || c == '_' || c == '.');
+        if plain {
+            n.rsplit('.').next().unwrap_or(n).to_string()
+        } else {
+            n.to_string()
+        }
     };
     let shorts: Vec<String> = names.iter().map(|n| short(n)).collect();
     names

@@ -72,9 +72,21 @@ pub fn numeric_args(function: &str, names: &[&str], required: usize, types: &[Da
                 Ok(DataType::Float64)
             } else {
                 Err(DataFusionError::Plan(format!(
-                    "{function}: {n} must be numeric, got {t}"
+                    "{function}: {n} must be numeric, got {t}{}",
+                    text_hint(t)
                 )))
             }
         })
         .collect()
+}
+
+/// For a text argument where a number belongs: how to convert numbers written as text.
+pub fn text_hint(t: &DataType) -> &'static str {
+    if matches!(t, DataType::Utf8 | DataType::LargeUtf8 | DataType::Utf8View) {
+        " (text: if the column holds numbers written with decimal commas or missing-value markers such as NA, \
+         convert it, e.g. CAST(NULLIF(REPLACE(col, ',', '.'), 'NA') AS DOUBLE); the ratesheet program converts such \
+         CSV columns when it opens a file)"
+    } else {
+        ""
+    }
 }

@@ -86,8 +86,9 @@ impl AggregateUDFImpl for FitFunction {
             .map(|(i, t)| {
                 if i < lead && !is_numeric_type(t) {
                     return Err(DataFusionError::Plan(format!(
-                        "{function}: {} must be numeric, got {t}",
-                        self.kind.leading_names()[i]
+                        "{function}: {} must be numeric, got {t}{}",
+                        self.kind.leading_names()[i],
+                        crate::sql::functions::args::text_hint(t)
                     )));
                 }
                 Ok(if i < lead || (is_numeric_type(t) && !t.is_integer()) {

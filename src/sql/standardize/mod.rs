@@ -138,7 +138,11 @@ impl<T: Tally> AggregateUDFImpl for StandardizeFunction<T> {
                 } else if t.is_numeric() || matches!(t, DataType::Null) {
                     Ok(DataType::Float64)
                 } else {
-                    Err(plan(format!("{function}: {} must be numeric, got {t}", names[i])))
+                    Err(plan(format!(
+                        "{function}: {} must be numeric, got {t}{}",
+                        names[i],
+                        crate::sql::functions::args::text_hint(t)
+                    )))
                 }
             })
             .collect()
