@@ -133,7 +133,7 @@ pub fn progress_text(read: usize, total: Option<usize>, fitting: Fitting, elapse
     }
 }
 
-/// Plans and runs `sql`, collecting its result: the one run path of the shell, `-e`, `--script`
+/// Plans and runs `sql`, collecting its result: the one run path of the shell, `--run`, `--script`
 /// and the demo, planning and execution both under the panic guard. With `show`, a progress
 /// line is kept on stderr while it runs longer than [`QUIET_PERIOD`]; `hints` may print a hint
 /// about the plan first.

@@ -1,4 +1,4 @@
-//! The one statement splitter, used by the shell, `-e`, `--script` and the demo: statements end
+//! The one statement splitter, used by the shell, `--run`, `--script` and the demo: statements end
 //! at `;` outside quotes ('text', "identifier", E'text with \' escapes') and outside comments
 //! (`--` to the end of the line, `/* ... */`). Comments are dropped; a statement holding nothing
 //! but space is no statement.

@@ -351,7 +351,7 @@ fn decimal_commas_markers_and_tsv_files_read_as_numbers() {
     ]);
     assert_eq!(code, 1);
     assert!(
-        err.starts_with("error in statement 1: poisson_fit: count must be numeric, got Utf8 (text:"),
+        err.starts_with("error in statement 1: poisson_fit: count column 'cases' is text; "),
         "{err}"
     );
     assert!(

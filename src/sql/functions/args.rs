@@ -72,21 +72,35 @@ pub fn numeric_args(function: &str, names: &[&str], required: usize, types: &[Da
                 Ok(DataType::Float64)
             } else {
                 Err(DataFusionError::Plan(format!(
-                    "{function}: {n} must be numeric, got {t}{}",
-                    text_hint(t)
+                    "{function}: {n} must be numeric, got {t}"
                 )))
             }
         })
         .collect()
 }
 
-/// For a text argument where a number belongs: how to convert numbers written as text.
-pub fn text_hint(t: &DataType) -> &'static str {
-    if matches!(t, DataType::Utf8 | DataType::LargeUtf8 | DataType::Utf8View) {
-        " (text: if the column holds numbers written with decimal commas or missing-value markers such as NA, \
-         convert it, e.g. CAST(NULLIF(REPLACE(col, ',', '.'), 'NA') AS DOUBLE); the ratesheet program converts such \
-         CSV columns when it opens a file)"
-    } else {
-        ""
+/// Whether `t` is a text type.
+pub fn is_text(t: &DataType) -> bool {
+    matches!(t, DataType::Utf8 | DataType::LargeUtf8 | DataType::Utf8View)
+}
+
+/// Refuses a text column given where a number belongs (`names` are the number arguments, in
+/// order), naming the column and how to convert it. Coercion lets such columns through so
+/// that this check, which sees the columns' names, can speak.
+pub fn refuse_text_columns(
+    function: &str,
+    names: &[&str],
+    fields: &[datafusion::arrow::datatypes::FieldRef],
+) -> Result<()> {
+    for (field, name) in fields.iter().zip(names) {
+        if is_text(field.data_type()) {
+            let column = field.name();
+            return Err(DataFusionError::Plan(format!(
+                "{function}: {name} column '{column}' is text; if it holds numbers written with decimal commas or \
+                 missing-value markers such as NA, convert it: CAST(NULLIF(REPLACE({column}, ',', '.'), 'NA') AS DOUBLE) \
+                 (the ratesheet program converts such CSV columns when it opens a file)"
+            )));
+        }
     }
+    Ok(())
 }

@@ -84,11 +84,14 @@ impl AggregateUDFImpl for FitFunction {
             .iter()
             .enumerate()
             .map(|(i, t)| {
+                if i < lead && crate::sql::functions::args::is_text(t) {
+                    // Refused in `return_field`, which knows the column's name.
+                    return Ok(t.clone());
+                }
                 if i < lead && !is_numeric_type(t) {
                     return Err(DataFusionError::Plan(format!(
-                        "{function}: {} must be numeric, got {t}{}",
-                        self.kind.leading_names()[i],
-                        crate::sql::functions::args::text_hint(t)
+                        "{function}: {} must be numeric, got {t}",
+                        self.kind.leading_names()[i]
                     )));
                 }
                 Ok(if i < lead || (is_numeric_type(t) && !t.is_integer()) {
@@ -102,6 +105,16 @@ impl AggregateUDFImpl for FitFunction {
 
     fn return_type(&self, _arg_types: &[DataType]) -> Result<DataType> {
         Ok(fit_type())
+    }
+
+    /// The fit struct; a text column where a number belongs is refused here, by name.
+    fn return_field(&self, arg_fields: &[FieldRef]) -> Result<FieldRef> {
+        crate::sql::functions::args::refuse_text_columns(self.kind.sql_name(), self.kind.leading_names(), arg_fields)?;
+        Ok(Arc::new(datafusion::arrow::datatypes::Field::new(
+            self.name(),
+            fit_type(),
+            true,
+        )))
     }
 
     /// The state fields depend only on the function and on which predictors are factors (see

@@ -135,14 +135,13 @@ impl<T: Tally> AggregateUDFImpl for StandardizeFunction<T> {
             .map(|(i, t)| {
                 if i >= numeric {
                     Ok(DataType::Utf8)
+                } else if is_text(t) {
+                    // Refused in `return_field`, which knows the column's name.
+                    Ok(t.clone())
                 } else if t.is_numeric() || matches!(t, DataType::Null) {
                     Ok(DataType::Float64)
                 } else {
-                    Err(plan(format!(
-                        "{function}: {} must be numeric, got {t}{}",
-                        names[i],
-                        crate::sql::functions::args::text_hint(t)
-                    )))
+                    Err(plan(format!("{function}: {} must be numeric, got {t}", names[i])))
                 }
             })
             .collect()
@@ -150,6 +149,14 @@ impl<T: Tally> AggregateUDFImpl for StandardizeFunction<T> {
 
     fn return_type(&self, _arg_types: &[DataType]) -> Result<DataType> {
         Ok(T::result_type())
+    }
+
+    /// The result struct; a text column where a number belongs is refused here, by name.
+    fn return_field(&self, arg_fields: &[FieldRef]) -> Result<FieldRef> {
+        let numeric = arg_fields.len() - usize::from(arg_fields.last().is_some_and(|f| is_text(f.data_type())));
+        let names = self.numeric_names(numeric)?;
+        crate::sql::functions::args::refuse_text_columns(self.kind.sql_name(), names, arg_fields)?;
+        Ok(Arc::new(Field::new(self.name(), T::result_type(), true)))
     }
 
     fn state_fields(&self, args: StateFieldsArgs) -> Result<Vec<FieldRef>> {
