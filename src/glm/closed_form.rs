@@ -130,12 +130,20 @@ pub fn binomial_two_sided(k: u64, n: u64, p: f64) -> f64 {
 }
 
 /// Quantile of Gamma(shape, 1) at p: χ²_p(2·shape)/2.
-///
-/// statrs' generic inverse stops about 1e-10 short of the root; a few Newton steps on the
-/// tail probability nearer to 0 (cdf below the median, survival function above) bring it to
-/// full precision.
 pub(crate) fn gamma_quantile(shape: f64, p: f64) -> f64 {
     let dist = Gamma::new(shape, 1.0).expect("shape > 0");
+    polished_quantile(&dist, p, f64::INFINITY)
+}
+
+/// Quantile of Beta(a, b) at p.
+pub(crate) fn beta_quantile(a: f64, b: f64, p: f64) -> f64 {
+    polished_quantile(&Beta::new(a, b).expect("shapes > 0"), p, 1.0)
+}
+
+/// The p-quantile of `dist` (support (0, `upper`)): statrs' generic inverse, which stops about
+/// 1e-10 short of the root, then a few Newton steps on the tail probability nearer to 0 (cdf
+/// below the median, survival function above) to full precision.
+fn polished_quantile<D: ContinuousCDF<f64, f64> + Continuous<f64, f64>>(dist: &D, p: f64, upper: f64) -> f64 {
     let mut x = dist.inverse_cdf(p);
     for _ in 0..8 {
         let gap = if p < 0.5 {
@@ -144,19 +152,16 @@ pub(crate) fn gamma_quantile(shape: f64, p: f64) -> f64 {
             (1.0 - p) - dist.sf(x)
         };
         let step = gap / dist.pdf(x);
-        if !step.is_finite() || x - step <= 0.0 {
+        let next = x - step;
+        if !step.is_finite() || next <= 0.0 || next >= upper {
             break;
         }
-        x -= step;
+        x = next;
         if step.abs() <= 1e-16 * x {
             break;
         }
     }
     x
-}
-
-fn beta_quantile(a: f64, b: f64, p: f64) -> f64 {
-    Beta::new(a, b).expect("shapes > 0").inverse_cdf(p)
 }
 
 fn check_count(what: &str, x: f64) -> Result<(), FitError> {

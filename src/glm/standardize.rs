@@ -27,10 +27,9 @@
 //! G⁻¹(1-α/2; O+1, 1)/E, and the exact two-sided p-value of ratio 1:
 //! min(1, 2·min(P(X ≤ O), P(X ≥ O))) with X ~ Poisson(E).
 
-use statrs::distribution::{Beta, Continuous, ContinuousCDF};
 use statrs::function::gamma::{gamma_lr, gamma_ur};
 
-use super::closed_form::gamma_quantile;
+use super::closed_form::{beta_quantile, gamma_quantile};
 
 /// How the upper limit of a direct rate is widened.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
@@ -306,30 +305,6 @@ pub fn funnel_overdispersion(points: &[(f64, f64)]) -> Option<f64> {
 fn f_quantile(p: f64, d1: f64, d2: f64) -> f64 {
     let b = beta_quantile(d1 / 2.0, d2 / 2.0, p);
     d2 * b / (d1 * (1.0 - b))
-}
-
-/// Quantile of Beta(a, b) at p, polished by Newton steps on the tail nearer to 0 (statrs'
-/// inverse alone stops short of full precision, as for the gamma quantile).
-fn beta_quantile(a: f64, b: f64, p: f64) -> f64 {
-    let dist = Beta::new(a, b).expect("shapes > 0");
-    let mut x = dist.inverse_cdf(p);
-    for _ in 0..8 {
-        let gap = if p < 0.5 {
-            dist.cdf(x) - p
-        } else {
-            (1.0 - p) - dist.sf(x)
-        };
-        let step = gap / dist.pdf(x);
-        let next = x - step;
-        if !step.is_finite() || next <= 0.0 || next >= 1.0 {
-            break;
-        }
-        x = next;
-        if step.abs() <= 1e-16 * x {
-            break;
-        }
-    }
-    x
 }
 
 #[cfg(test)]

@@ -250,13 +250,7 @@ impl FitSettings {
         let bad = |what: &str| plan_error(format!("{origin}: {key}={value} is not valid: {what}"));
         match key {
             "level" => {
-                let v: f64 = value
-                    .parse()
-                    .map_err(|_| bad("expected a number strictly between 0 and 1"))?;
-                if !(v > 0.0 && v < 1.0) {
-                    return Err(bad("expected a number strictly between 0 and 1"));
-                }
-                self.level = v;
+                self.level = parse_level(value).ok_or_else(|| bad("expected a number strictly between 0 and 1"))?
             }
             "se" => {
                 let se = SeType::parse(value).ok_or_else(|| bad("valid values are model, quasi, hc0, hc1"))?;
@@ -350,6 +344,11 @@ pub(crate) fn parse_pairs(options: &str, function: &str, keys: &[&str]) -> Resul
             ))),
         })
         .collect()
+}
+
+/// A confidence level: a number strictly between 0 and 1.
+pub(crate) fn parse_level(value: &str) -> Option<f64> {
+    value.trim().parse::<f64>().ok().filter(|v| *v > 0.0 && *v < 1.0)
 }
 
 pub(crate) fn plan_error(msg: String) -> DataFusionError {

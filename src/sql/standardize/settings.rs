@@ -6,7 +6,7 @@ use datafusion::common::config::ConfigOptions;
 use datafusion::error::Result;
 
 use crate::glm::standardize::GammaShift;
-use crate::sql::model::options::{InvalidRows, RatesheetConfig, parse_pairs, plan_error};
+use crate::sql::model::options::{InvalidRows, RatesheetConfig, parse_level, parse_pairs, plan_error};
 
 /// Which standardisation an aggregate performs.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Hash)]
@@ -113,13 +113,7 @@ impl StandardizeSettings {
         }
         match key {
             "level" => {
-                let v: f64 = value
-                    .parse()
-                    .map_err(|_| bad("expected a number strictly between 0 and 1"))?;
-                if !(v > 0.0 && v < 1.0) {
-                    return Err(bad("expected a number strictly between 0 and 1"));
-                }
-                self.level = v;
+                self.level = parse_level(value).ok_or_else(|| bad("expected a number strictly between 0 and 1"))?
             }
             "per" => {
                 let v: f64 = value.parse().map_err(|_| bad("expected a finite number > 0"))?;
