@@ -513,8 +513,8 @@ def funnel_limits():
             r = float(stats.poisson.ppf(p, e))
             fr, fb = stats.poisson.cdf(r, e), stats.poisson.cdf(r - 1, e)
             a = (fr - p) / (fr - fb)
-            cases.append({"expected": e, "p": p, "quantile": r, "limit": float((r - a) / e)})
-    return {"call": "scipy.stats.poisson.ppf / cdf; limit = (r - (F(r) - p) / (F(r) - F(r-1))) / E", "cases": cases}
+            cases.append({"expected": e, "p": p, "quantile": r, "limit": max(0.0, float((r - a) / e))})
+    return {"call": "scipy.stats.poisson.ppf / cdf; limit = max(0, (r - (F(r) - p) / (F(r) - F(r-1))) / E)", "cases": cases}
 
 
 def main():

@@ -64,7 +64,7 @@ pub const COMMANDS: &[Command] = &[
     },
     Command {
         name: "draw",
-        args: "[forest|funnel] [LABEL COLUMN...] [FILE.svg|.png] [level=L] [widen]",
+        args: "[forest|funnel] [LABEL COLUMN...] [FILE.svg|.png [replace]] [level=L] [widen]",
         help: "draw the last result: rate ratios as a forest plot, observed/expected as a funnel plot; in the terminal, or to a file",
         action: Action::Draw,
     },
@@ -454,7 +454,7 @@ impl Shell {
                 let drawn = crate::cli::picture::Request::parse(&words).and_then(|request| {
                     let picture = crate::cli::picture::Picture::of(&self.last, &request)?;
                     match &request.file {
-                        Some(path) => picture.write(path, true),
+                        Some(path) => picture.write(path, request.replace),
                         None => {
                             let glyphs = crate::cli::picture::Glyphs::for_stdout();
                             Ok(picture.text(self.style.width.unwrap_or(100), &glyphs))

@@ -261,7 +261,8 @@ pub fn poisson_at_least(k: f64, mean: f64) -> f64 {
 /// (for example 0.025 or 0.975) when E = `expected`: the p-quantile r of Poisson(E) (the
 /// smallest whole r with P(X ≤ r) ≥ p), moved down by the interpolation
 /// a = (P(X ≤ r) - p) / (P(X = r)) so that the limit is continuous in E, divided by E:
-/// (r - a) / E. Spiegelhalter (2005, Statistics in Medicine 24:1185-1202; from memory).
+/// (r - a) / E, and never below 0 (for small E the interpolation at r = 0 would give a negative
+/// ratio). Spiegelhalter (2005, Statistics in Medicine 24:1185-1202; from memory).
 pub fn funnel_limit(expected: f64, p: f64) -> f64 {
     // Start near the normal approximation and walk to the quantile.
     let z = super::distributions::normal_quantile(p);
@@ -275,7 +276,8 @@ pub fn funnel_limit(expected: f64, p: f64) -> f64 {
     let at_r = poisson_at_most(r, expected);
     let below = poisson_at_most(r - 1.0, expected);
     let a = (at_r - p) / (at_r - below);
-    (r - a) / expected
+    // At r = 0 the interpolation runs below zero counts; a ratio's limit stops at 0.
+    ((r - a) / expected).max(0.0)
 }
 
 /// The multiplicative overdispersion factor of a funnel plot: φ = mean of the squared

@@ -124,11 +124,13 @@ pub struct Request {
     pub file: Option<String>,
     pub level: Option<f64>,
     pub widen: bool,
+    /// Whether an existing file may be overwritten.
+    pub replace: bool,
 }
 
 impl Request {
     /// Parses the words after the command: `[forest|funnel] [LABEL COLUMN...] [FILE.svg|FILE.png]
-    /// [level=0.9] [widen]`.
+    /// [level=0.9] [widen] [replace]`.
     pub fn parse(words: &[String]) -> Result<Request, String> {
         let mut r = Request::default();
         let mut columns = Vec::new();
@@ -138,6 +140,7 @@ impl Request {
                 "forest" if r.kind.is_none() && columns.is_empty() => r.kind = Some(Kind::Forest),
                 "funnel" if r.kind.is_none() && columns.is_empty() => r.kind = Some(Kind::Funnel),
                 "widen" => r.widen = true,
+                "replace" => r.replace = true,
                 _ if lower.starts_with("level=") => {
                     let v = lower["level=".len()..]
                         .parse::<f64>()
@@ -209,7 +212,9 @@ impl Picture {
     pub fn write(&self, path: &str, replace: bool) -> Result<String, String> {
         let target = std::path::Path::new(path);
         if target.exists() && !replace {
-            return Err(format!("{path} exists; choose another name or allow replacing it"));
+            return Err(format!(
+                "{path} exists; choose another name, or add 'replace' (--replace on the command line)"
+            ));
         }
         let svg = self.svg()?;
         let lower = path.to_ascii_lowercase();
