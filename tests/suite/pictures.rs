@@ -266,6 +266,10 @@ async fn pictures_refuse_results_they_cannot_draw() {
     let negative = result("SELECT 'a' AS term, 1.5 AS rate_ratio, -1.0 AS rr_low, 2.0 AS rr_high").await;
     let e = Picture::of(&negative, &Request::default()).unwrap_err();
     assert!(e.contains("log axis"), "{e}");
+    let swapped = result("SELECT 'a' AS area, 1.5 AS rr, 2.0 AS lo, 1.0 AS hi").await;
+    let request = Request::parse(&["forest", "area", "rr", "lo", "hi"].map(String::from)).unwrap();
+    let e = Picture::of(&swapped, &request).unwrap_err();
+    assert!(e.contains("does not hold its estimate"), "{e}");
     let many = result("SELECT CAST(v AS VARCHAR) AS term, 1.5 AS rate_ratio, 1.0 AS rr_low, 2.0 AS rr_high FROM unnest(range(84)) AS t(v)").await;
     let p = Picture::of(&many, &Request::default()).unwrap();
     assert!(

@@ -246,7 +246,9 @@ impl Forest {
                 let lo = row.low.or(row.estimate).unwrap_or(self.axis.lo / 2.0);
                 let hi = row.high.or(row.estimate).unwrap_or(self.axis.hi * 2.0);
                 let (a, b) = (col(lo), col(hi));
-                let (from, to) = (a.max(0) as usize, (b.min(bar_w as isize - 1)).max(0) as usize);
+                let last = bar_w as isize - 1;
+                let (from, to) = (a.clamp(0, last) as usize, b.clamp(0, last) as usize);
+                let (from, to) = (from.min(to), to.max(from));
                 for c in bar.iter_mut().take(to + 1).skip(from) {
                     *c = g.interval;
                 }

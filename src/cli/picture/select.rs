@@ -255,6 +255,18 @@ pub fn forest_rows(batches: &[RecordBatch], named: &Named) -> Result<ForestData,
     if rows.iter().all(|r| r.low.is_none() && r.high.is_none()) {
         return Err("every interval in the result is NULL: there is nothing to draw".into());
     }
+    if let Some(bad) = rows.iter().find(|r| match (r.estimate, r.low, r.high) {
+        (_, Some(l), Some(h)) if l > h => true,
+        (Some(e), Some(l), _) if e < l => true,
+        (Some(e), _, Some(h)) if e > h => true,
+        _ => false,
+    }) {
+        return Err(format!(
+            "row '{}' has an interval that does not hold its estimate (low {:?}, estimate {:?}, high {:?}); \
+             check which columns are the estimate and the limits",
+            bad.label, bad.low, bad.estimate, bad.high
+        ));
+    }
     if let Some(bad) = rows
         .iter()
         .find(|r| [r.estimate, r.low, r.high].iter().flatten().any(|v| *v <= 0.0))
