@@ -13,3 +13,6 @@ pub mod cli;
 /// The seeded generator of the demo data (feature `cli`).
 #[cfg(feature = "cli")]
 pub mod demo;
+/// `s3://` object storage from the AWS environment variables (feature `s3`, part of `cli`).
+#[cfg(feature = "s3")]
+pub mod storage;

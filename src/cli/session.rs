@@ -22,7 +22,9 @@ pub fn new_session(settings: &SessionSettings) -> Result<SessionContext> {
     if let Some(t) = settings.threads {
         config = config.with_target_partitions(t.max(1));
     }
-    let mut runtime = RuntimeEnvBuilder::new();
+    // s3:// paths get their stores from this process's AWS environment variables.
+    let mut runtime =
+        RuntimeEnvBuilder::new().with_object_store_registry(Arc::new(crate::storage::EnvObjectStores::new()));
     if let Some(limit) = settings.memory_limit {
         runtime = runtime.with_memory_pool(Arc::new(FairSpillPool::new(limit)));
         // Merging spilled runs needs its own reservation; keep it well inside the limit.
@@ -152,6 +154,9 @@ pub async fn open_table(ctx: &SessionContext, path: &str, name: Option<&str>) ->
 
 async fn open_unguarded(ctx: &SessionContext, path: &str, name: Option<&str>) -> Result<String> {
     let base = name.map(str::to_string).unwrap_or_else(|| table_name_for(path));
+    if crate::storage::is_remote(path) {
+        return open_remote(ctx, path, base).await;
+    }
     let format = format_of(path)?;
     if format == "xlsx" {
         let sheets = super::workbook::read_workbook(path)?;
@@ -457,4 +462,39 @@ fn text_to_number(column: &str) -> Result<datafusion::prelude::Expr> {
     let value = datafusion::functions::expr_fn::replace(trimmed, lit(","), lit("."));
     let converted = when(is_missing, lit(datafusion::common::ScalarValue::Utf8(None))).otherwise(value)?;
     Ok(cast(converted, datafusion::arrow::datatypes::DataType::Float64).alias(column))
+}
+
+/// An object-storage path (`s3://bucket/key.parquet`, a prefix ending in `/`, or a glob) as a
+/// table. The format comes from the extension (a prefix holds Parquet unless it ends in `.csv`
+/// parts); the local file checks (empty files, layouts) do not apply: the engine reads the
+/// objects when the table is touched, and its errors name the path.
+async fn open_remote(ctx: &SessionContext, path: &str, base: String) -> Result<String> {
+    let lower = path.to_ascii_lowercase();
+    let name = free_name(ctx, base, path)?;
+    let with_path = |e: DataFusionError| DataFusionError::Plan(format!("{path}: {e}"));
+    if lower.ends_with(".csv") {
+        ctx.register_csv(name.as_str(), path, CsvReadOptions::new())
+            .await
+            .map_err(with_path)?;
+    } else if lower.ends_with(".parquet") || lower.ends_with('/') || lower.contains('*') {
+        let ext = if lower.ends_with(".parquet") { "" } else { ".parquet" };
+        let options = ParquetReadOptions {
+            file_extension: ext,
+            ..Default::default()
+        };
+        ctx.register_parquet(name.as_str(), path, options)
+            .await
+            .map_err(with_path)?;
+    } else {
+        return Err(DataFusionError::Plan(format!(
+            "{path}: cannot tell the format; name a .parquet or .csv object, or a prefix ending in '/'"
+        )));
+    }
+    ctx.sql(&format!("SELECT * FROM \"{name}\" LIMIT 0"))
+        .await
+        .map_err(with_path)?
+        .collect()
+        .await
+        .map_err(with_path)?;
+    Ok(name)
 }

@@ -10,6 +10,7 @@ mod features;
 mod fuzz_inputs;
 mod hostile_files;
 mod limits;
+mod object_storage;
 mod pictures;
 mod shell;
 mod soak;
