@@ -5,7 +5,7 @@ use std::process::ExitCode;
 
 use clap::Parser;
 use ratesheet::cli::hints::Hints;
-use ratesheet::cli::output::{Format, Style, render, save_batches};
+use ratesheet::cli::output::{Format, Style, render, save_anywhere};
 use ratesheet::cli::progress::collect_with_progress;
 use ratesheet::cli::session::{SessionSettings, new_session, open_table};
 use ratesheet::cli::shell::Shell;
@@ -199,7 +199,7 @@ async fn main() -> ExitCode {
         }
     }
     if let Some(path) = &args.save_to {
-        match save_batches(&last, path, args.replace, "add --replace to overwrite it") {
+        match save_anywhere(&ctx, &last, path, args.replace, "add --replace to overwrite it").await {
             Ok(rows) => eprintln!("wrote {rows} rows to {path}"),
             Err(e) => {
                 eprintln!("error: {e}");

@@ -14,7 +14,7 @@ use rustyline::history::DefaultHistory;
 use rustyline::{Context, Editor, Helper, Highlighter, Hinter, Validator};
 
 use super::hints::Hints;
-use super::output::{Format, Style, render, save_batches};
+use super::output::{Format, Style, render, save_anywhere};
 use super::progress::collect_with_progress;
 use super::session::open_table;
 use super::statements::split;
@@ -467,12 +467,15 @@ impl Shell {
                 }
             }
             Action::Export => match args.first() {
-                Some(path) => match save_batches(
+                Some(path) => match save_anywhere(
+                    &self.ctx,
                     &self.last,
                     path,
                     args.get(1) == Some(&"replace"),
                     &format!("add 'replace' to overwrite it: {PREFIX}export {path} replace"),
-                ) {
+                )
+                .await
+                {
                     Ok(rows) => println!("wrote {rows} rows to {path}"),
                     Err(e) => eprintln!("error: {e}"),
                 },

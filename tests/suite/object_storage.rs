@@ -122,6 +122,26 @@ fn extracts_in_s3_read_and_write_like_local_files() {
     assert_eq!(code, 0, "{err}");
     assert!(out.contains("n\n1800\n") && out.contains("b\n11650\n"), "{out}");
 
+    // --save-to writes an object (refusing to overwrite it unasked).
+    let save = [
+        "demo-parquet/pipe_breaks.parquet",
+        "--run",
+        FIT,
+        "--format",
+        "csv",
+        "--save-to",
+        "s3://extracts/out/fits.csv",
+    ];
+    let (code, _, err) = ratesheet(port, SECRET, &save);
+    assert_eq!(code, 0, "{err}");
+    let saved = std::fs::read_to_string(root.join("extracts/out/fits.csv")).unwrap();
+    assert!(saved.starts_with("district,fit_status,"), "{saved}");
+    // 10 districts x 6 terms, one row each, as the message says.
+    assert_eq!(saved.lines().count(), 1 + 10 * 6);
+    assert!(err.contains("wrote 60 rows to s3://extracts/out/fits.csv"), "{err}");
+    let (code, _, err) = ratesheet(port, SECRET, &save);
+    assert!(code != 0 && err.contains("exists; add --replace"), "{err}");
+
     // A wrong secret: an error, and the secret is never shown.
     let (code, _, err) = ratesheet(
         port,

@@ -76,3 +76,46 @@ pub fn save_batches(
         }
     }
 }
+
+/// As [`save_batches`], for a local path or an `s3://bucket/key` object: an object is written
+/// to a temporary local file first and then put into the store the session uses for that
+/// bucket (an existing object is kept unless `replace`).
+pub async fn save_anywhere(
+    ctx: &datafusion::prelude::SessionContext,
+    batches: &[RecordBatch],
+    path: &str,
+    replace: bool,
+    how_to_replace: &str,
+) -> std::result::Result<usize, String> {
+    if !crate::storage::is_remote(path) {
+        return save_batches(batches, path, replace, how_to_replace);
+    }
+    use object_store::ObjectStoreExt;
+    let url = url::Url::parse(path).map_err(|e| format!("{path}: {e}"))?;
+    let bucket = url.host_str().unwrap_or_default();
+    let key = object_store::path::Path::from(url.path().trim_start_matches('/'));
+    let base = datafusion::execution::object_store::ObjectStoreUrl::parse(format!("s3://{bucket}"))
+        .map_err(|e| format!("{path}: {e}"))?;
+    let store = ctx
+        .runtime_env()
+        .object_store(&base)
+        .map_err(|e| format!("{path}: {e}"))?;
+    if !replace && store.head(&key).await.is_ok() {
+        return Err(format!("{path} exists; {how_to_replace}"));
+    }
+    let ext = std::path::Path::new(url.path())
+        .extension()
+        .and_then(|e| e.to_str())
+        .unwrap_or("")
+        .to_string();
+    let local = std::env::temp_dir().join(format!("ratesheet-upload-{}.{ext}", std::process::id()));
+    let rows = save_batches(batches, local.to_str().unwrap_or_default(), true, "")
+        .map_err(|e| e.replace(local.to_str().unwrap_or_default(), path))?;
+    let bytes = std::fs::read(&local).map_err(|e| format!("{path}: {e}"));
+    let _ = std::fs::remove_file(&local);
+    store
+        .put(&key, bytes?.into())
+        .await
+        .map_err(|e| format!("{path}: writing the object failed: {e}"))?;
+    Ok(rows)
+}
