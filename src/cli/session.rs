@@ -240,14 +240,20 @@ async fn open_unguarded(ctx: &SessionContext, path: &str, name: Option<&str>) ->
             }
         }
     }
-    // Reading the schema is not enough to find a broken file: touch the table once.
+    touch(ctx, &name, path).await?;
+    Ok(name)
+}
+
+/// Reading the schema is not enough to find a broken file: touch the new table once.
+async fn touch(ctx: &SessionContext, name: &str, path: &str) -> Result<()> {
+    let with_path = |e: DataFusionError| DataFusionError::Plan(format!("{path}: {e}"));
     ctx.sql(&format!("SELECT * FROM \"{name}\" LIMIT 0"))
         .await
         .map_err(with_path)?
         .collect()
         .await
         .map_err(with_path)?;
-    Ok(name)
+    Ok(())
 }
 
 /// The files a path stands for (a folder's files of the format; nothing for globs, which
@@ -490,11 +496,6 @@ async fn open_remote(ctx: &SessionContext, path: &str, base: String) -> Result<S
             "{path}: cannot tell the format; name a .parquet or .csv object, or a prefix ending in '/'"
         )));
     }
-    ctx.sql(&format!("SELECT * FROM \"{name}\" LIMIT 0"))
-        .await
-        .map_err(with_path)?
-        .collect()
-        .await
-        .map_err(with_path)?;
+    touch(ctx, &name, path).await?;
     Ok(name)
 }
