@@ -155,6 +155,14 @@ def negative_binomial_blocks(ins, dv, br):
         "poisson_estimate": list(map(float, poisson.params)),
         "terms": list(X.columns),
     }
+    out["doctorvisits_cameron_trivedi"] = negbin_block(dv["visits"], cameron_trivedi_design(dv), None)
+    out["huge_counts_constant_mean"] = huge_counts_alpha()
+    return out
+
+
+def cameron_trivedi_design(dv):
+    """The DoctorVisits design of Cameron & Trivedi's count model (shared by the Poisson and NB2
+    blocks)."""
     full = {
         "intercept": np.ones(len(dv)),
         "gender=female": indicator(dv, "gender", "female"),
@@ -167,9 +175,7 @@ def negative_binomial_blocks(ins, dv, br):
     for v in ["private", "freepoor", "freerepat", "nchronic", "lchronic"]:
         full[f"{v}=yes"] = indicator(dv, v, "yes")
     full["age^2"] = dv["age"] ** 2
-    out["doctorvisits_cameron_trivedi"] = negbin_block(dv["visits"], pd.DataFrame(full), None)
-    out["huge_counts_constant_mean"] = huge_counts_alpha()
-    return out
+    return pd.DataFrame(full)
 
 
 def huge_counts_alpha():
@@ -606,19 +612,7 @@ def main():
     out["models"]["doctorvisits_gender_by_age"] = poisson_block(
         dv["visits"], X, None, list(X.columns)
     )
-    full = {
-        "intercept": np.ones(len(dv)),
-        "gender=female": indicator(dv, "gender", "female"),
-        "age": dv["age"],
-        "income": dv["income"],
-        "illness": dv["illness"].astype(float),
-        "reduced": dv["reduced"].astype(float),
-        "health": dv["health"].astype(float),
-    }
-    for v in ["private", "freepoor", "freerepat", "nchronic", "lchronic"]:
-        full[f"{v}=yes"] = indicator(dv, v, "yes")
-    full["age^2"] = dv["age"] ** 2
-    X = pd.DataFrame(full)
+    X = cameron_trivedi_design(dv)
     out["models"]["doctorvisits_cameron_trivedi"] = poisson_block(
         dv["visits"], X, None, list(X.columns)
     )

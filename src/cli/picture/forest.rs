@@ -203,7 +203,7 @@ impl Forest {
             ))?;
             root.draw(&Text::new(short(t), (x, axis_y + 8), centred.clone()))?;
         }
-        let caption = format!("rate ratio (log scale); the line marks 1");
+        let caption = "rate ratio (log scale); the line marks 1";
         root.draw(&Text::new(
             caption,
             ((l.plot_left + l.plot_right) / 2, axis_y + 26),

@@ -104,3 +104,26 @@ pub fn refuse_text_columns(
     }
     Ok(())
 }
+
+/// Argument types of the scoring functions (`fit_expected`, `fit_expected_interval`): a fit,
+/// an exposure, then the fit's predictors (and for some an options string); numbers after the
+/// fit become Float64, everything else keeps its type. `usage` completes the error message.
+pub fn scoring_arg_types(function: &str, usage: &str, arg_types: &[DataType]) -> Result<Vec<DataType>> {
+    if arg_types.len() < 2 {
+        return Err(DataFusionError::Plan(format!(
+            "{function} takes {usage}; got {} arguments",
+            arg_types.len()
+        )));
+    }
+    Ok(arg_types
+        .iter()
+        .enumerate()
+        .map(|(i, t)| {
+            if i > 0 && t.is_numeric() {
+                DataType::Float64
+            } else {
+                t.clone()
+            }
+        })
+        .collect())
+}

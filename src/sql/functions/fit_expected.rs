@@ -10,7 +10,7 @@ use std::sync::{Arc, LazyLock};
 
 use datafusion::arrow::array::{Array, ArrayRef, Float64Array, StringArray};
 use datafusion::arrow::datatypes::DataType;
-use datafusion::error::{DataFusionError, Result};
+use datafusion::error::Result;
 use datafusion::logical_expr::{
     ColumnarValue, Documentation, ScalarFunctionArgs, ScalarUDF, ScalarUDFImpl, Signature, Volatility,
 };
@@ -64,23 +64,11 @@ impl ScalarUDFImpl for FitExpected {
         &self.signature
     }
     fn coerce_types(&self, arg_types: &[DataType]) -> Result<Vec<DataType>> {
-        if arg_types.len() < 2 {
-            return Err(DataFusionError::Plan(format!(
-                "fit_expected takes a fit, an exposure and the fit's predictors in order; got {} arguments",
-                arg_types.len()
-            )));
-        }
-        Ok(arg_types
-            .iter()
-            .enumerate()
-            .map(|(i, t)| {
-                if i > 0 && t.is_numeric() {
-                    DataType::Float64
-                } else {
-                    t.clone()
-                }
-            })
-            .collect())
+        super::args::scoring_arg_types(
+            "fit_expected",
+            "a fit, an exposure and the fit's predictors in order",
+            arg_types,
+        )
     }
     fn return_type(&self, _arg_types: &[DataType]) -> Result<DataType> {
         Ok(DataType::Float64)

@@ -11,7 +11,7 @@ use std::sync::{Arc, LazyLock};
 use datafusion::arrow::array::{Array, ArrayRef, Float64Array, StructArray};
 use datafusion::arrow::buffer::NullBuffer;
 use datafusion::arrow::datatypes::{DataType, Field, Fields};
-use datafusion::error::{DataFusionError, Result};
+use datafusion::error::Result;
 use datafusion::logical_expr::{
     ColumnarValue, Documentation, ScalarFunctionArgs, ScalarUDF, ScalarUDFImpl, Signature, Volatility,
 };
@@ -70,24 +70,11 @@ impl ScalarUDFImpl for FitExpectedInterval {
         &self.signature
     }
     fn coerce_types(&self, arg_types: &[DataType]) -> Result<Vec<DataType>> {
-        if arg_types.len() < 2 {
-            return Err(DataFusionError::Plan(format!(
-                "fit_expected_interval takes a fit, an exposure, the fit's predictors in order and an optional \
-                 options string; got {} arguments",
-                arg_types.len()
-            )));
-        }
-        Ok(arg_types
-            .iter()
-            .enumerate()
-            .map(|(i, t)| {
-                if i > 0 && t.is_numeric() {
-                    DataType::Float64
-                } else {
-                    t.clone()
-                }
-            })
-            .collect())
+        super::args::scoring_arg_types(
+            "fit_expected_interval",
+            "a fit, an exposure, the fit's predictors in order and an optional options string",
+            arg_types,
+        )
     }
     fn return_type(&self, _arg_types: &[DataType]) -> Result<DataType> {
         Ok(DataType::Struct(fields()))

@@ -16,7 +16,7 @@ use datafusion::logical_expr::{
 use super::args::{arg_arrays, exec_error, floats, texts};
 use crate::glm::standardize::{GammaMoments, direct_rate_ratio};
 use crate::sql::model::aggregate::DOC_SECTION;
-use crate::sql::model::options::parse_pairs;
+use crate::sql::model::options::{parse_level, parse_pairs};
 
 const NAME: &str = "standardized_rate_ratio";
 
@@ -104,15 +104,11 @@ fn level_option(text: &str) -> Result<Option<f64>> {
         if key != "level" {
             return Err(exec_error(format!("{NAME}: unknown option '{key}'; valid keys: level")));
         }
-        let v = value
-            .parse::<f64>()
-            .ok()
-            .filter(|l| *l > 0.0 && *l < 1.0)
-            .ok_or_else(|| {
-                exec_error(format!(
-                    "{NAME}: level={value} is not valid: expected a number strictly between 0 and 1"
-                ))
-            })?;
+        let v = parse_level(&value).ok_or_else(|| {
+            exec_error(format!(
+                "{NAME}: level={value} is not valid: expected a number strictly between 0 and 1"
+            ))
+        })?;
         level = Some(v);
     }
     Ok(level)
