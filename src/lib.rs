@@ -6,7 +6,7 @@
 pub mod glm;
 pub mod sql;
 
-pub use sql::{register_functions, register_functions_on_state};
+pub use sql::{register_functions, register_functions_on_state, session_state, with_ratesheet_options};
 /// The command-line program (feature `cli`, on by default).
 #[cfg(feature = "cli")]
 pub mod cli;
@@ -16,3 +16,7 @@ pub mod demo;
 /// `s3://` object storage from the AWS environment variables (feature `s3`, part of `cli`).
 #[cfg(feature = "s3")]
 pub mod storage;
+/// Apache Ballista: scheduler and executor processes with ratesheet's functions, and a client
+/// session that runs every statement on such a cluster (feature `cluster`, part of `cli`).
+#[cfg(feature = "cluster")]
+pub mod cluster;

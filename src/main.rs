@@ -7,7 +7,7 @@ use clap::Parser;
 use ratesheet::cli::hints::Hints;
 use ratesheet::cli::output::{Format, Style, render, save_anywhere};
 use ratesheet::cli::progress::collect_with_progress;
-use ratesheet::cli::session::{SessionSettings, new_session, open_table};
+use ratesheet::cli::session::{SessionSettings, new_cluster_session, new_session, open_table};
 use ratesheet::cli::shell::Shell;
 use ratesheet::cli::statements::statements;
 use std::io::IsTerminal;
@@ -69,6 +69,127 @@ struct Args {
     /// observed and expected counts, otherwise a forest plot of its estimates and intervals.
     #[arg(long, value_name = "FILE")]
     draw_to: Option<String>,
+    /// Run every statement on the cluster whose scheduler is at HOST:PORT (see 'ratesheet
+    /// cluster --help'); tables and settings work as locally.
+    #[arg(long, value_name = "HOST:PORT")]
+    cluster: Option<String>,
+}
+
+/// `ratesheet cluster scheduler|executor`: the processes of a cluster (Apache Ballista).
+#[derive(Parser, Debug)]
+#[command(
+    name = "ratesheet cluster",
+    about = "Start the processes of a ratesheet cluster (Apache Ballista); then run 'ratesheet --cluster HOST:PORT FILES...'",
+    after_help = "Example on one machine:\n  ratesheet cluster scheduler\n  ratesheet cluster executor --scheduler 127.0.0.1:50050\n  \
+                  ratesheet --cluster 127.0.0.1:50050 pipes.parquet\n\n\
+                  The cluster speaks plain gRPC without authentication or TLS: keep it on loopback or a private network.\n\
+                  Set RATESHEET_LOG=info (or debug) to see the processes' own log lines on stderr."
+)]
+struct ClusterArgs {
+    #[command(subcommand)]
+    role: ClusterRole,
+}
+
+#[derive(clap::Subcommand, Debug)]
+enum ClusterRole {
+    /// Plans statements and hands their tasks to executors.
+    Scheduler {
+        /// Address to listen on.
+        #[arg(long, value_name = "ADDR:PORT", default_value = "127.0.0.1:50050")]
+        bind: std::net::SocketAddr,
+        /// Seconds without a heartbeat after which an executor counts as lost and its tasks run
+        /// elsewhere.
+        #[arg(long, value_name = "SECONDS", default_value_t = 10, value_parser = clap::value_parser!(u64).range(2..=3600))]
+        lost_after: u64,
+    },
+    /// Runs tasks; joins the scheduler at --scheduler.
+    Executor {
+        /// The scheduler to join.
+        #[arg(long, value_name = "HOST:PORT")]
+        scheduler: String,
+        /// Host (and data port) to listen on and advertise; free ports are picked when no port is
+        /// given, so several executors can run on one machine.
+        #[arg(long, value_name = "HOST[:PORT]", default_value = "127.0.0.1")]
+        bind: String,
+        /// Tasks run at once (default: the number of cores).
+        #[arg(long, value_name = "N")]
+        slots: Option<usize>,
+        /// Folder for shuffle files and spills (default: a new temporary folder).
+        #[arg(long, value_name = "DIR")]
+        work_dir: Option<std::path::PathBuf>,
+        /// Memory for all running tasks together (e.g. 4G); tasks spill beyond their share.
+        #[arg(long, value_name = "BYTES")]
+        memory_limit: Option<String>,
+    },
+}
+
+/// `ratesheet cluster ...` (unless a file or folder named `cluster` is meant).
+async fn run_cluster_process(words: Vec<String>) -> ExitCode {
+    let args = match ClusterArgs::try_parse_from(words) {
+        Ok(a) => a,
+        Err(e) => {
+            let _ = e.print();
+            return ExitCode::from(if e.use_stderr() { 2 } else { 0 });
+        }
+    };
+    let result = match args.role {
+        ClusterRole::Scheduler { bind, lost_after } => {
+            ratesheet::cluster::init_logging("warn");
+            ratesheet::cluster::scheduler::run(ratesheet::cluster::scheduler::SchedulerSettings {
+                bind,
+                lost_after: std::time::Duration::from_secs(lost_after),
+            })
+            .await
+        }
+        ClusterRole::Executor {
+            scheduler,
+            bind,
+            slots,
+            work_dir,
+            memory_limit,
+        } => {
+            let (host, port) = match ratesheet::cluster::host_and_port(&scheduler, "--scheduler") {
+                Ok(a) => a,
+                Err(e) => {
+                    eprintln!("error: {e}");
+                    return ExitCode::from(2);
+                }
+            };
+            let memory_limit = match memory_limit.as_deref().map(parse_bytes).transpose() {
+                Ok(m) => m,
+                Err(e) => {
+                    eprintln!("error: {e}");
+                    return ExitCode::from(2);
+                }
+            };
+            let mut settings = ratesheet::cluster::executor::ExecutorSettings::new(host, port);
+            match bind.rsplit_once(':').filter(|(_, p)| p.chars().all(|c| c.is_ascii_digit())) {
+                Some((h, p)) => match p.parse::<u16>() {
+                    Ok(p) if p > 0 => {
+                        settings.bind_host = h.to_string();
+                        settings.data_port = Some(p);
+                    }
+                    _ => {
+                        eprintln!("error: --bind {bind}: the port must be a number from 1 to 65535");
+                        return ExitCode::from(2);
+                    }
+                },
+                None => settings.bind_host = bind,
+            }
+            settings.slots = slots;
+            settings.work_dir = work_dir;
+            settings.memory_limit = memory_limit;
+            ratesheet::cluster::init_logging("warn");
+            ratesheet::cluster::executor::run(settings).await
+        }
+    };
+    match result {
+        Ok(()) => ExitCode::SUCCESS,
+        Err(e) => {
+            eprintln!("error: {}", ratesheet::cli::progress::describe(&e));
+            ExitCode::FAILURE
+        }
+    }
 }
 
 /// A size such as `512M`, `4G`, `2GB` or `1.5GiB`: K, M and G (optionally followed by `B` or
@@ -95,6 +216,12 @@ fn parse_bytes(s: &str) -> Result<usize, String> {
 
 #[tokio::main]
 async fn main() -> ExitCode {
+    let words: Vec<String> = std::env::args().collect();
+    if words.get(1).map(String::as_str) == Some("cluster") && !std::path::Path::new("cluster").exists() {
+        let mut rest = vec!["ratesheet cluster".to_string()];
+        rest.extend(words.into_iter().skip(2));
+        return run_cluster_process(rest).await;
+    }
     let args = Args::parse();
     let memory_limit = match args.memory_limit.as_deref().map(parse_bytes).transpose() {
         Ok(m) => m,
@@ -103,10 +230,24 @@ async fn main() -> ExitCode {
             return ExitCode::from(2);
         }
     };
-    let ctx = match new_session(&SessionSettings {
+    let settings = SessionSettings {
         threads: args.threads,
         memory_limit,
-    }) {
+    };
+    let session = match &args.cluster {
+        Some(address) => {
+            if memory_limit.is_some() {
+                eprintln!(
+                    "error: --memory-limit applies to one machine; on a cluster give each executor its memory (ratesheet cluster executor --memory-limit)"
+                );
+                return ExitCode::from(2);
+            }
+            ratesheet::cluster::init_logging("off");
+            new_cluster_session(&settings, address).await
+        }
+        None => new_session(&settings),
+    };
+    let ctx = match session {
         Ok(c) => c,
         Err(e) => {
             eprintln!("error: {e}");
@@ -181,8 +322,27 @@ async fn main() -> ExitCode {
     let progress = !args.no_progress && std::io::stderr().is_terminal();
     let hints = Hints::new(!args.no_hints);
     let mut last = Vec::new();
+    let on_cluster = ratesheet::cluster::client::cluster_of(&ctx).is_some();
     for (k, sql) in statements(&text).iter().enumerate() {
-        let result = collect_with_progress(&ctx, sql, progress, &hints).await;
+        let run = collect_with_progress(&ctx, sql, progress, &hints);
+        // On a cluster, Ctrl-C cancels the statement's job on the scheduler before exiting.
+        let result = if on_cluster {
+            let finished = tokio::select! {
+                r = run => Some(r),
+                _ = tokio::signal::ctrl_c() => None,
+            };
+            match finished {
+                Some(r) => r,
+                None => {
+                    // The statement's future is gone: its job's cancellation is on its way.
+                    ratesheet::cluster::client::finish_cancels(std::time::Duration::from_secs(3)).await;
+                    eprintln!("cancelled");
+                    return ExitCode::from(130);
+                }
+            }
+        } else {
+            run.await
+        };
         match result.and_then(|b| render(&b, &style).map(|out| (b, out))) {
             Ok((batches, out)) => {
                 print!("{out}");

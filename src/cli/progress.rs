@@ -164,10 +164,14 @@ pub async fn collect_with_progress(
         )
     };
     let at_start = fit_counts();
+    // On a cluster, a statement abandoned mid-way (Ctrl-C) has its job cancelled on the scheduler.
+    let cancel = crate::cluster::client::CancelOnDrop::new(ctx, &plan);
     let run = super::guard::without_panics("the query", collect(plan, ctx.task_ctx()));
-    let explain = |e| naming_files(naming_limit(e, ctx), &leaves);
+    let explain = |e| crate::cluster::client::explain(ctx, naming_files(naming_limit(e, ctx), &leaves));
     if !show {
-        return run.await.map_err(explain);
+        let result = run.await.map_err(explain);
+        cancel.disarm();
+        return result;
     }
     let total = total_rows(&files);
     let start = Instant::now();
@@ -185,6 +189,7 @@ pub async fn collect_with_progress(
         }
     };
     drop(line);
+    cancel.disarm();
     result.map_err(explain)
 }
 

@@ -43,6 +43,14 @@ pub fn new_session(settings: &SessionSettings) -> Result<SessionContext> {
     Ok(ctx)
 }
 
+/// A session whose statements run on the cluster whose scheduler is at `address`: the same
+/// functions, settings and table rules as [`new_session`] (tables still open by path; the
+/// executors read the files themselves).
+pub async fn new_cluster_session(settings: &SessionSettings, address: &str) -> Result<SessionContext> {
+    let local = new_session(settings)?;
+    crate::cluster::client::connect(local.state(), address).await
+}
+
 /// A table name from a path: the file stem, lower-cased, with anything but letters, digits and
 /// '_' replaced by '_' (and a leading digit prefixed with 't_').
 pub fn table_name_for(path: &str) -> String {
@@ -158,6 +166,14 @@ async fn open_unguarded(ctx: &SessionContext, path: &str, name: Option<&str>) ->
         return open_remote(ctx, path, base).await;
     }
     let format = format_of(path)?;
+    let cluster = crate::cluster::client::cluster_of(ctx);
+    if let (Some(cluster), "xlsx") = (&cluster, format) {
+        return Err(DataFusionError::Plan(format!(
+            "{path}: a spreadsheet's tables live in this process's memory and cannot travel to the cluster at {}; \
+             save the sheet as CSV or Parquet where the executors can read it",
+            cluster.address
+        )));
+    }
     if format == "xlsx" {
         let sheets = super::workbook::read_workbook(path)?;
         let mut names = Vec::new();
@@ -240,7 +256,10 @@ async fn open_unguarded(ctx: &SessionContext, path: &str, name: Option<&str>) ->
             }
         }
     }
-    touch(ctx, &name, path).await?;
+    if let Err(e) = touch(ctx, &name, path).await {
+        let _ = ctx.deregister_table(name.as_str());
+        return Err(crate::cluster::client::explain(ctx, e));
+    }
     Ok(name)
 }
 

@@ -15,7 +15,7 @@ use datafusion::error::Result;
 use datafusion::execution::FunctionRegistry;
 use datafusion::execution::session_state::{SessionState, SessionStateBuilder};
 use datafusion::logical_expr::{AggregateUDF, ScalarUDF};
-use datafusion::prelude::SessionContext;
+use datafusion::prelude::{SessionConfig, SessionContext};
 
 pub use model::options::RatesheetConfig;
 
@@ -43,6 +43,7 @@ pub fn scalar_functions() -> Vec<ScalarUDF> {
         functions::rate_comparison::rate_ratio_test(),
         functions::standardized_rate_ratio::standardized_rate_ratio(),
         functions::interaction::interaction(),
+        functions::ratesheet_version::ratesheet_version(),
     ]
 }
 
@@ -76,9 +77,30 @@ pub fn register_functions_on_state(state: &mut SessionState) -> Result<()> {
     for f in scalar_functions() {
         state.register_udf(f.into())?;
     }
-    let options = state.config_mut().options_mut();
+    let config = std::mem::take(state.config_mut());
+    *state.config_mut() = with_ratesheet_options(config);
+    Ok(())
+}
+
+/// `config` with the `ratesheet.*` options registered (unchanged if they are already), so that
+/// `SET ratesheet.level = 0.9` and settings arriving by name (a cluster's session settings) are
+/// accepted and validated instead of dropped.
+pub fn with_ratesheet_options(mut config: SessionConfig) -> SessionConfig {
+    let options = config.options_mut();
     if options.extensions.get::<RatesheetConfig>().is_none() {
         options.extensions.insert(RatesheetConfig::default());
     }
-    Ok(())
+    config
+}
+
+/// A session state with DataFusion's default features and everything [`register_functions`]
+/// adds: what an embedding program hands to a distributed engine (a Ballista scheduler's
+/// session builder, an executor's function registry, a client's `remote_with_state`).
+pub fn session_state(config: SessionConfig) -> Result<SessionState> {
+    let mut state = SessionStateBuilder::new()
+        .with_default_features()
+        .with_config(with_ratesheet_options(config))
+        .build();
+    register_functions_on_state(&mut state)?;
+    Ok(state)
 }

@@ -1,6 +1,7 @@
 //! The whole test suite in one binary (each extra test binary would link DataFusion again).
 
 mod cli;
+mod cluster;
 mod core_behaviour;
 mod core_closed_form;
 mod core_reference;

@@ -15,6 +15,7 @@ pub mod poisson_count_fit;
 pub mod poisson_fit;
 pub mod rate_comparison;
 pub mod rate_interval;
+pub mod ratesheet_version;
 pub mod standardized_rate;
 pub mod standardized_rate_ratio;
 pub mod standardized_ratio;

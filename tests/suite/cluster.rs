@@ -1,0 +1,455 @@
+//! The same SQL on an Apache Ballista cluster: one scheduler and two executors on loopback,
+//! started in this process from the code that `ratesheet cluster scheduler|executor` runs, and
+//! a client session from the code behind `ratesheet --cluster`. Every number must equal the
+//! single-process result to 1e-12 relative. The real processes are tested in `cli`.
+
+use std::time::Duration;
+
+use datafusion::arrow::array::{Array, ArrayRef, AsArray, RecordBatch};
+use datafusion::arrow::datatypes::{DataType, Float64Type};
+use datafusion::arrow::util::display::array_value_to_string;
+use datafusion::prelude::SessionContext;
+use ratesheet::cli::session::{SessionSettings, new_cluster_session, new_session, open_table};
+use ratesheet::cli::statements::statements;
+use ratesheet::cluster::executor::ExecutorSettings;
+use ratesheet::cluster::scheduler::{SchedulerSettings, bind, serve};
+
+use crate::support::fixture_path;
+
+/// Starts a scheduler on a free loopback port and `executors` executors joined to it; returns
+/// the scheduler's `HOST:PORT`. The tasks end with the test's runtime.
+pub async fn start_cluster(executors: usize) -> String {
+    let listener = bind("127.0.0.1:0".parse().unwrap()).await.unwrap();
+    let address = listener.local_addr().unwrap();
+    tokio::spawn(async move { serve(listener, &SchedulerSettings::default()).await });
+    for _ in 0..executors {
+        let mut settings = ExecutorSettings::new("127.0.0.1", address.port());
+        settings.slots = Some(2);
+        tokio::spawn(ratesheet::cluster::executor::run(settings));
+    }
+    address.to_string()
+}
+
+/// Every value of two results equal: floats to `rel` relative (exactly equal NaN/inf/NULL),
+/// everything else by its text; structs and lists compared element by element.
+fn assert_same(what: &str, local: &[RecordBatch], remote: &[RecordBatch], rel: f64) {
+    let rows = |b: &[RecordBatch]| b.iter().map(|b| b.num_rows()).sum::<usize>();
+    assert_eq!(rows(local), rows(remote), "{what}: row counts");
+    let local = datafusion::arrow::compute::concat_batches(&local[0].schema(), local).unwrap();
+    let remote = datafusion::arrow::compute::concat_batches(&remote[0].schema(), remote).unwrap();
+    assert_eq!(local.num_columns(), remote.num_columns(), "{what}: columns");
+    for c in 0..local.num_columns() {
+        let name = local.schema().field(c).name().clone();
+        same_array(&format!("{what}: column {name}"), local.column(c), remote.column(c), rel);
+    }
+}
+
+fn same_array(what: &str, a: &ArrayRef, b: &ArrayRef, rel: f64) {
+    assert_eq!(a.len(), b.len(), "{what}: lengths");
+    assert_eq!(a.data_type(), b.data_type(), "{what}: types");
+    for r in 0..a.len() {
+        assert_eq!(a.is_null(r), b.is_null(r), "{what} row {r}: NULL on one side only");
+    }
+    match a.data_type() {
+        DataType::Float64 => {
+            let (x, y) = (a.as_primitive::<Float64Type>(), b.as_primitive::<Float64Type>());
+            for r in (0..a.len()).filter(|&r| !a.is_null(r)) {
+                let (u, v) = (x.value(r), y.value(r));
+                let same = u == v || (u.is_nan() && v.is_nan()) || (u - v).abs() <= rel * u.abs().max(v.abs());
+                assert!(same, "{what} row {r}: {u:e} locally, {v:e} on the cluster");
+            }
+        }
+        DataType::Struct(fields) => {
+            let (x, y) = (a.as_struct(), b.as_struct());
+            for (k, f) in fields.iter().enumerate() {
+                same_array(&format!("{what}.{}", f.name()), x.column(k), y.column(k), rel);
+            }
+        }
+        DataType::List(_) => {
+            let (x, y) = (a.as_list::<i32>(), b.as_list::<i32>());
+            assert_eq!(x.value_offsets(), y.value_offsets(), "{what}: list lengths");
+            same_array(&format!("{what}[]"), x.values(), y.values(), rel);
+        }
+        DataType::LargeList(_) => {
+            let (x, y) = (a.as_list::<i64>(), b.as_list::<i64>());
+            assert_eq!(x.value_offsets(), y.value_offsets(), "{what}: list lengths");
+            same_array(&format!("{what}[]"), x.values(), y.values(), rel);
+        }
+        _ => {
+            for r in 0..a.len() {
+                let (u, v) = (array_value_to_string(a, r).unwrap(), array_value_to_string(b, r).unwrap());
+                assert_eq!(u, v, "{what} row {r}");
+            }
+        }
+    }
+}
+
+async fn run(ctx: &SessionContext, sql: &str) -> Vec<RecordBatch> {
+    ctx.sql(sql)
+        .await
+        .unwrap_or_else(|e| panic!("{sql}: {e}"))
+        .collect()
+        .await
+        .unwrap_or_else(|e| panic!("{sql}: {e}"))
+}
+
+/// Opens the same tables in both sessions.
+async fn open_both(local: &SessionContext, remote: &SessionContext, paths: &[String]) {
+    for p in paths {
+        let a = open_table(local, p, None).await.unwrap();
+        let b = open_table(remote, p, None).await.unwrap_or_else(|e| panic!("{p} on the cluster: {e}"));
+        assert_eq!(a, b, "{p}: the same table name locally and on the cluster");
+    }
+}
+
+/// Statements run in both sessions; each result compared.
+async fn compare(local: &SessionContext, remote: &SessionContext, sql: &[&str]) -> usize {
+    let mut compared = 0;
+    for statement in sql {
+        let (a, b) = (run(local, statement).await, run(remote, statement).await);
+        if a.is_empty() && b.is_empty() {
+            continue;
+        }
+        assert_same(statement, &a, &b, 1e-12);
+        compared += 1;
+    }
+    compared
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 4)]
+async fn fits_on_an_in_process_cluster_equal_the_single_process_results() {
+    let address = start_cluster(2).await;
+    let settings = SessionSettings::default();
+    let local = new_session(&settings).unwrap();
+    let remote = tokio::time::timeout(Duration::from_secs(60), new_cluster_session(&settings, &address))
+        .await
+        .expect("connecting within 60 s")
+        .unwrap();
+
+    // Held-in reference data (tests/fixtures/reference): one statement per family and helper.
+    let data = |f: &str| fixture_path(&format!("reference/data/{f}")).to_string_lossy().to_string();
+    open_both(
+        &local,
+        &remote,
+        &[data("insurance.csv"), data("breslow.csv"), data("doctorvisits.csv"), data("mmmec.csv")],
+    )
+    .await;
+    let reference = [
+        "SELECT \"District\", poisson_fit(\"Claims\", \"Holders\", \"Group\", \"Age\", 'ref.Group=<1l, ref.Age=<25') AS fit \
+         FROM insurance GROUP BY \"District\" ORDER BY 1",
+        "SELECT negbin_fit(y, n, smoke, age) AS fit FROM breslow",
+        "SELECT fit_lr_test(poisson_fit(y, n, smoke, CAST(age AS VARCHAR)), poisson_fit(y, n, smoke, age)) AS t FROM breslow",
+        "SELECT gender, negbin_count_fit(visits, age, income, illness) AS fit FROM doctorvisits GROUP BY gender ORDER BY 1",
+        "SELECT linear_fit(ln(visits + 1), age, income, gender) AS fit FROM doctorvisits",
+        "SELECT nation, standardized_ratio(deaths, expected) AS oe FROM mmmec GROUP BY nation ORDER BY 1",
+        "SELECT poisson_fit(y, n, smoke, age, 'ci=profile') AS fit FROM breslow",
+    ];
+    assert_eq!(compare(&local, &remote, &reference).await, reference.len());
+
+    // A session default changes the cluster's result exactly as it changes the local one.
+    let by_district = reference[0];
+    let at_95 = run(&remote, by_district).await;
+    for ctx in [&local, &remote] {
+        run(ctx, "SET ratesheet.level = 0.9").await;
+    }
+    assert_eq!(compare(&local, &remote, &[by_district]).await, 1);
+    let at_90 = run(&remote, by_district).await;
+    let level = |b: &[RecordBatch]| {
+        let fit = b[0].column(1).as_struct();
+        fit.column_by_name("level").unwrap().as_primitive::<Float64Type>().value(0)
+    };
+    assert_eq!((level(&at_95), level(&at_90)), (0.95, 0.9), "SET ratesheet.level reached the cluster");
+
+    // The demo script, statement by statement, on the demo's Parquet file and CSV file.
+    let root = std::path::Path::new(env!("CARGO_MANIFEST_DIR"));
+    let demo = root.join("demo-parquet");
+    open_both(
+        &local,
+        &remote,
+        &[
+            demo.join("pipe_breaks.parquet").to_string_lossy().to_string(),
+            demo.join("callouts.csv").to_string_lossy().to_string(),
+        ],
+    )
+    .await;
+    let script = std::fs::read_to_string(root.join("sql-examples/demo.sql")).unwrap();
+    let demo_statements = statements(&script);
+    let refs: Vec<&str> = demo_statements.iter().map(String::as_str).collect();
+    assert!(compare(&local, &remote, &refs).await >= 6);
+
+    // A multi-file Parquet table, its files split across the executors.
+    let parts = std::env::temp_dir().join(format!("ratesheet-cluster-parts-{}", std::process::id()));
+    let _ = std::fs::remove_dir_all(&parts);
+    std::fs::create_dir_all(&parts).unwrap();
+    for (k, district) in ["Harbour Flats", "Kiln Row", "Quarry Hill"].iter().enumerate() {
+        let file = parts.join(format!("part-{k}.parquet"));
+        run(
+            &local,
+            &format!("COPY (SELECT * FROM pipe_breaks WHERE district = '{district}') TO '{}'", file.display()),
+        )
+        .await;
+    }
+    run(
+        &local,
+        &format!(
+            "COPY (SELECT * FROM pipe_breaks WHERE district NOT IN ('Harbour Flats', 'Kiln Row', 'Quarry Hill')) TO '{}'",
+            parts.join("part-3.parquet").display()
+        ),
+    )
+    .await;
+    open_both(&local, &remote, &[parts.to_string_lossy().to_string()]).await;
+    let table = ratesheet::cli::session::table_name_for(&parts.to_string_lossy());
+    let split = format!(
+        "SELECT district, poisson_fit(breaks, km_years, material, diameter_class, soil_corrosivity) AS fit \
+         FROM {table} GROUP BY district ORDER BY district"
+    );
+    assert_eq!(compare(&local, &remote, &[split.as_str()]).await, 1);
+    let whole = split.replace(&format!("FROM {table}"), "FROM pipe_breaks");
+    assert_same("split vs whole file", &run(&local, &whole).await, &run(&remote, &split).await, 1e-12);
+    let _ = std::fs::remove_dir_all(&parts);
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn an_unreachable_scheduler_is_named_within_seconds() {
+    // A port that was free a moment ago: nothing listens there.
+    let port = std::net::TcpListener::bind("127.0.0.1:0").unwrap().local_addr().unwrap().port();
+    let address = format!("127.0.0.1:{port}");
+    let started = std::time::Instant::now();
+    let e = new_cluster_session(&SessionSettings::default(), &address).await.unwrap_err().to_string();
+    assert!(started.elapsed() < Duration::from_secs(10), "took {:?}", started.elapsed());
+    assert!(e.contains(&format!("cannot reach the scheduler at {address}")), "{e}");
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn spreadsheets_and_unreadable_paths_are_refused_on_a_cluster() {
+    let address = start_cluster(1).await;
+    let remote = new_cluster_session(&SessionSettings::default(), &address).await.unwrap();
+    let book = std::env::temp_dir().join(format!("ratesheet-cluster-{}.xlsx", std::process::id()));
+    std::fs::write(&book, b"not opened").unwrap();
+    let e = open_table(&remote, &book.to_string_lossy(), None).await.unwrap_err().to_string();
+    assert!(e.contains("cannot travel to the cluster at"), "{e}");
+    let _ = std::fs::remove_file(&book);
+    // A file this process can read and the executors cannot: removed after it was opened.
+    let csv = std::env::temp_dir().join(format!("ratesheet-cluster-gone-{}.csv", std::process::id()));
+    std::fs::copy(fixture_path("reference/data/breslow.csv"), &csv).unwrap();
+    let name = open_table(&remote, &csv.to_string_lossy(), None).await.unwrap();
+    std::fs::remove_file(&csv).unwrap();
+    let e = ratesheet::cli::progress::collect_with_progress(
+        &remote,
+        &format!("SELECT SUM(y) FROM {name}"),
+        false,
+        &ratesheet::cli::hints::Hints::new(false),
+    )
+    .await
+    .unwrap_err()
+    .to_string();
+    assert!(e.contains("executors read local paths themselves"), "{e}");
+}
+
+/// The real processes: `ratesheet cluster scheduler`, two `ratesheet cluster executor`s and
+/// `ratesheet --cluster`, all on loopback.
+mod processes {
+    use std::io::{BufRead, BufReader};
+    use std::process::{Child, Command, Stdio};
+    use std::time::{Duration, Instant};
+
+    /// A started process, killed when dropped (a failing test leaves nothing running).
+    struct Running(Child);
+
+    impl Drop for Running {
+        fn drop(&mut self) {
+            let _ = self.0.kill();
+            let _ = self.0.wait();
+        }
+    }
+
+    fn start(args: &[&str]) -> Running {
+        let child = Command::new(env!("CARGO_BIN_EXE_ratesheet"))
+            .current_dir(env!("CARGO_MANIFEST_DIR"))
+            .args(args)
+            .stdin(Stdio::null())
+            .stdout(Stdio::null())
+            .stderr(Stdio::piped())
+            .spawn()
+            .unwrap();
+        Running(child)
+    }
+
+    /// Waits until the process has written a line containing `text` to stderr.
+    fn await_line(p: &mut Running, text: &str) -> String {
+        let stderr = p.0.stderr.take().unwrap();
+        let (tx, rx) = std::sync::mpsc::channel();
+        std::thread::spawn(move || {
+            for line in BufReader::new(stderr).lines().map_while(Result::ok) {
+                let _ = tx.send(line);
+            }
+        });
+        let deadline = Instant::now() + Duration::from_secs(30);
+        let mut seen = String::new();
+        while Instant::now() < deadline {
+            if let Ok(line) = rx.recv_timeout(Duration::from_millis(200)) {
+                seen.push_str(&line);
+                seen.push('\n');
+                if line.contains(text) {
+                    return seen;
+                }
+            }
+        }
+        panic!("no line with {text:?} within 30 s; stderr so far:\n{seen}");
+    }
+
+    fn sigterm(p: &Running) {
+        // SAFETY: kill(2) on the pid of a child we own.
+        unsafe {
+            libc::kill(p.0.id() as i32, libc::SIGTERM);
+        }
+    }
+
+    /// Waits for a process to exit; its status, or None after `limit`.
+    fn exit_within(p: &mut Running, limit: Duration) -> Option<std::process::ExitStatus> {
+        let deadline = Instant::now() + limit;
+        while Instant::now() < deadline {
+            if let Ok(Some(status)) = p.0.try_wait() {
+                return Some(status);
+            }
+            std::thread::sleep(Duration::from_millis(100));
+        }
+        None
+    }
+
+    /// Runs the client to the end (or kills it after `limit`): exit code, stdout, stderr, time.
+    fn client(args: &[&str], limit: Duration) -> (Option<i32>, String, String, Duration) {
+        let started = Instant::now();
+        let mut child = Command::new(env!("CARGO_BIN_EXE_ratesheet"))
+            .current_dir(env!("CARGO_MANIFEST_DIR"))
+            .args(args)
+            .stdin(Stdio::null())
+            .stdout(Stdio::piped())
+            .stderr(Stdio::piped())
+            .spawn()
+            .unwrap();
+        let (mut out, mut err) = (child.stdout.take().unwrap(), child.stderr.take().unwrap());
+        let out = std::thread::spawn(move || {
+            let mut s = String::new();
+            let _ = std::io::Read::read_to_string(&mut out, &mut s);
+            s
+        });
+        let err = std::thread::spawn(move || {
+            let mut s = String::new();
+            let _ = std::io::Read::read_to_string(&mut err, &mut s);
+            s
+        });
+        let mut child = Running(child);
+        let status = exit_within(&mut child, limit);
+        drop(child);
+        (
+            status.and_then(|s| s.code()),
+            out.join().unwrap(),
+            err.join().unwrap(),
+            started.elapsed(),
+        )
+    }
+
+    fn free_port() -> u16 {
+        std::net::TcpListener::bind("127.0.0.1:0").unwrap().local_addr().unwrap().port()
+    }
+
+    const PER_DISTRICT: &str = "SELECT district, poisson_fit(breaks, km_years, material, install_decade, diameter_class, soil_corrosivity) AS fit \
+                                FROM pipe_breaks GROUP BY district ORDER BY district";
+
+    #[test]
+    fn a_cluster_of_real_processes_prints_what_a_local_run_prints_and_survives_a_lost_executor() {
+        let port = free_port();
+        let address = format!("127.0.0.1:{port}");
+        let mut scheduler = start(&["cluster", "scheduler", "--bind", &address, "--lost-after", "3"]);
+        await_line(&mut scheduler, "scheduler listening on");
+        let work = std::env::temp_dir().join(format!("ratesheet-cluster-work-{}", std::process::id()));
+        let dirs = [work.join("a"), work.join("b")];
+        let mut executors: Vec<Running> = dirs
+            .iter()
+            .map(|d| {
+                let mut e = start(&[
+                    "cluster",
+                    "executor",
+                    "--scheduler",
+                    &address,
+                    "--slots",
+                    "2",
+                    "--work-dir",
+                    &d.to_string_lossy(),
+                ]);
+                await_line(&mut e, "executor joining");
+                e
+            })
+            .collect();
+
+        // 1. The per-district fit, given on the command line: stdout as in a local run.
+        let file = "demo-parquet/pipe_breaks.parquet";
+        let local = client(&[file, "--run", PER_DISTRICT, "--format", "csv"], Duration::from_secs(60));
+        assert_eq!(local.0, Some(0), "local run: {}", local.2);
+        let remote = client(
+            &["--cluster", &address, file, "--run", PER_DISTRICT, "--format", "csv"],
+            Duration::from_secs(90),
+        );
+        assert_eq!(remote.0, Some(0), "cluster run failed: {}", remote.2);
+        assert_eq!(remote.1, local.1, "stdout on the cluster differs from the local run");
+        assert!(local.1.lines().count() > 5);
+
+        // 2. A heavier job (the demo rows 400 times); one executor is killed while it runs.
+        let heavy = "SELECT district, poisson_fit(breaks, km_years, material, install_decade, diameter_class, soil_corrosivity) AS fit \
+                     FROM pipe_breaks CROSS JOIN generate_series(1, 400) AS copies GROUP BY district ORDER BY district";
+        let want = client(&[file, "--run", heavy, "--format", "csv"], Duration::from_secs(120));
+        assert_eq!(want.0, Some(0), "local heavy run: {}", want.2);
+        let victim = executors.remove(0);
+        let killer = std::thread::spawn(move || {
+            std::thread::sleep(Duration::from_millis(1500));
+            drop(victim); // SIGKILL: no goodbye to the scheduler
+        });
+        let got = client(
+            &["--cluster", &address, file, "--run", heavy, "--format", "csv"],
+            Duration::from_secs(120),
+        );
+        killer.join().unwrap();
+        eprintln!(
+            "lost executor: exit {:?} after {:.1} s; stderr: {}",
+            got.0,
+            got.3.as_secs_f64(),
+            got.2.trim()
+        );
+        match got.0 {
+            Some(0) => assert_eq!(got.1, want.1, "after a lost executor the numbers changed"),
+            Some(_) => assert!(
+                got.2.contains("error in statement 1:") && got.1.is_empty(),
+                "a failure must be one clear error and no partial result: {}",
+                got.2
+            ),
+            None => panic!("the client hung for 120 s after an executor was lost"),
+        }
+
+        // 3. SIGTERM stops the remaining processes cleanly.
+        let mut rest = executors.remove(0);
+        sigterm(&rest);
+        let status = exit_within(&mut rest, Duration::from_secs(15)).expect("the executor stops on SIGTERM");
+        assert!(status.success(), "executor exit status {status:?}");
+        sigterm(&scheduler);
+        let status = exit_within(&mut scheduler, Duration::from_secs(15)).expect("the scheduler stops on SIGTERM");
+        assert!(status.success(), "scheduler exit status {status:?}");
+        let _ = std::fs::remove_dir_all(&work);
+    }
+
+    #[test]
+    fn a_scheduler_without_executors_is_reported_not_waited_on_forever() {
+        let port = free_port();
+        let address = format!("127.0.0.1:{port}");
+        let mut scheduler = start(&["cluster", "scheduler", "--bind", &address]);
+        await_line(&mut scheduler, "scheduler listening on");
+        let got = client(
+            &["--cluster", &address, "--run", "SELECT 1"],
+            Duration::from_secs(90),
+        );
+        assert_eq!(got.0, Some(1), "stderr: {}", got.2);
+        assert!(got.2.contains("waiting for an executor"), "{}", got.2);
+        assert!(got.2.contains("does it have executors?"), "{}", got.2);
+        assert!(got.1.is_empty());
+    }
+}
