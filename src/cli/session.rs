@@ -260,7 +260,51 @@ async fn open_unguarded(ctx: &SessionContext, path: &str, name: Option<&str>) ->
         let _ = ctx.deregister_table(name.as_str());
         return Err(crate::cluster::client::explain(ctx, e));
     }
+    if cluster.is_some()
+        && let Err(e) = check_cluster_rows(ctx, &name, path, has_rows(&files, format)).await
+    {
+        let _ = ctx.deregister_table(name.as_str());
+        return Err(e);
+    }
     Ok(name)
+}
+
+/// Whether the local files of a table hold rows (Parquet: the footers' row counts; CSV: any
+/// file, since a header without rows is refused when opening).
+fn has_rows(files: &[std::path::PathBuf], format: &str) -> bool {
+    use datafusion::parquet::arrow::arrow_reader::ParquetRecordBatchReaderBuilder;
+    match format {
+        "parquet" => files.iter().any(|f| {
+            std::fs::File::open(f)
+                .ok()
+                .and_then(|file| ParquetRecordBatchReaderBuilder::try_new(file).ok())
+                .is_some_and(|b| b.metadata().file_metadata().num_rows() > 0)
+        }),
+        _ => !files.is_empty(),
+    }
+}
+
+/// On a cluster session, refuses table `name` (opened from `path`) when this machine's files
+/// hold rows (`rows_here`) and the cluster finds none: the scheduler lists the files again on
+/// its own machine, and a path it cannot see lists as an empty table, which would answer every
+/// query with no rows instead of an error.
+pub async fn check_cluster_rows(ctx: &SessionContext, name: &str, path: &str, rows_here: bool) -> Result<()> {
+    let Some(cluster) = crate::cluster::client::cluster_of(ctx) else {
+        return Ok(());
+    };
+    if !rows_here {
+        return Ok(());
+    }
+    let batches = ctx.sql(&format!("SELECT 1 FROM \"{name}\" LIMIT 1")).await?.collect().await?;
+    if batches.iter().any(|b| b.num_rows() > 0) {
+        return Ok(());
+    }
+    Err(DataFusionError::Plan(format!(
+        "{path}: the cluster at {} finds no rows there, while this machine does: on a cluster the scheduler \
+         and executors read local paths themselves, so {path} must be readable at the same place on their \
+         machines (or give an s3:// path)",
+        cluster.address
+    )))
 }
 
 /// Reading the schema is not enough to find a broken file: touch the new table once.
