@@ -152,7 +152,7 @@ pub async fn collect_with_progress(
             Ok((logical, df.create_physical_plan().await?))
         })
     };
-    let (logical, plan) = planning.await?;
+    let (logical, plan) = planning.await.map_err(|e| crate::cluster::client::explain(ctx, e))?;
     hints.after_planning(&logical);
     let leaves = scans(&plan);
     let files = file_scans(&leaves);

@@ -136,6 +136,14 @@ pub fn explain(ctx: &SessionContext, e: DataFusionError) -> DataFusionError {
         return e;
     }
     let text = e.to_string();
+    if text.contains("Error serializing custom table") {
+        return DataFusionError::Plan(
+            "this statement reads a table that lives only in this process (a table function such as \
+             generate_series or range, a table made with CREATE TABLE or INSERT, or a spreadsheet): it \
+             cannot travel to the cluster; write it to a Parquet file the executors can read, then open that"
+                .to_string(),
+        );
+    }
     let missing = ["No such file", "not found", "NotFound", "does not exist"].iter().any(|m| text.contains(m));
     let local = text.contains("file://") || text.contains(" /") || text.contains("path: \"/");
     if missing && local && !text.contains("s3://") {

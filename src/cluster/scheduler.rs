@@ -5,7 +5,7 @@ use std::sync::Arc;
 use std::time::Duration;
 
 use ballista_scheduler::cluster::BallistaCluster;
-use ballista_scheduler::config::SchedulerConfig;
+use ballista_scheduler::config::{SchedulerConfig, TaskDistributionPolicy};
 use ballista_scheduler::scheduler_process::{create_scheduler, start_grpc_service_with_listener};
 use datafusion::error::{DataFusionError, Result};
 use datafusion_proto::protobuf::{LogicalPlanNode, PhysicalPlanNode};
@@ -50,6 +50,8 @@ pub async fn serve(listener: TcpListener, settings: &SchedulerSettings) -> Resul
         .with_port(address.port())
         .with_override_config_producer(Arc::new(cluster_config))
         .with_override_session_builder(Arc::new(cluster_state))
+        // Tasks spread over the executors one at a time, rather than filling one executor first.
+        .with_task_distribution(TaskDistributionPolicy::RoundRobin)
         .with_no_executors_grace_period_seconds(lost_after);
     config.bind_host = address.ip().to_string();
     config.executor_timeout_seconds = lost_after;

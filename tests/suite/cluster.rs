@@ -260,55 +260,58 @@ mod processes {
     use std::process::{Child, Command, Stdio};
     use std::time::{Duration, Instant};
 
-    /// A started process, killed when dropped (a failing test leaves nothing running).
-    struct Running(Child);
+    /// A started process, killed when dropped (a failing test leaves nothing running); its
+    /// stderr lines arrive on `lines`.
+    struct Running {
+        child: Child,
+        lines: std::sync::mpsc::Receiver<String>,
+    }
 
     impl Drop for Running {
         fn drop(&mut self) {
-            let _ = self.0.kill();
-            let _ = self.0.wait();
+            let _ = self.child.kill();
+            let _ = self.child.wait();
         }
     }
 
-    fn start(args: &[&str]) -> Running {
-        let child = Command::new(env!("CARGO_BIN_EXE_ratesheet"))
+    /// Starts the program with `args`; `log` is its RATESHEET_LOG.
+    fn start(args: &[&str], log: &str) -> Running {
+        let mut child = Command::new(env!("CARGO_BIN_EXE_ratesheet"))
             .current_dir(env!("CARGO_MANIFEST_DIR"))
+            .env("RATESHEET_LOG", log)
             .args(args)
             .stdin(Stdio::null())
             .stdout(Stdio::null())
             .stderr(Stdio::piped())
             .spawn()
             .unwrap();
-        Running(child)
-    }
-
-    /// Waits until the process has written a line containing `text` to stderr.
-    fn await_line(p: &mut Running, text: &str) -> String {
-        let stderr = p.0.stderr.take().unwrap();
-        let (tx, rx) = std::sync::mpsc::channel();
+        let stderr = child.stderr.take().unwrap();
+        let (tx, lines) = std::sync::mpsc::channel();
         std::thread::spawn(move || {
             for line in BufReader::new(stderr).lines().map_while(Result::ok) {
                 let _ = tx.send(line);
             }
         });
-        let deadline = Instant::now() + Duration::from_secs(30);
-        let mut seen = String::new();
+        Running { child, lines }
+    }
+
+    /// Waits until the process writes a line containing `text` to stderr.
+    fn await_line(p: &Running, text: &str, limit: Duration) -> bool {
+        let deadline = Instant::now() + limit;
         while Instant::now() < deadline {
-            if let Ok(line) = rx.recv_timeout(Duration::from_millis(200)) {
-                seen.push_str(&line);
-                seen.push('\n');
-                if line.contains(text) {
-                    return seen;
-                }
+            if let Ok(line) = p.lines.recv_timeout(Duration::from_millis(50))
+                && line.contains(text)
+            {
+                return true;
             }
         }
-        panic!("no line with {text:?} within 30 s; stderr so far:\n{seen}");
+        false
     }
 
     fn sigterm(p: &Running) {
         // SAFETY: kill(2) on the pid of a child we own.
         unsafe {
-            libc::kill(p.0.id() as i32, libc::SIGTERM);
+            libc::kill(p.child.id() as i32, libc::SIGTERM);
         }
     }
 
@@ -316,7 +319,7 @@ mod processes {
     fn exit_within(p: &mut Running, limit: Duration) -> Option<std::process::ExitStatus> {
         let deadline = Instant::now() + limit;
         while Instant::now() < deadline {
-            if let Ok(Some(status)) = p.0.try_wait() {
+            if let Ok(Some(status)) = p.child.try_wait() {
                 return Some(status);
             }
             std::thread::sleep(Duration::from_millis(100));
@@ -346,7 +349,8 @@ mod processes {
             let _ = std::io::Read::read_to_string(&mut err, &mut s);
             s
         });
-        let mut child = Running(child);
+        let (_, lines) = std::sync::mpsc::channel();
+        let mut child = Running { child, lines };
         let status = exit_within(&mut child, limit);
         drop(child);
         (
@@ -368,24 +372,18 @@ mod processes {
     fn a_cluster_of_real_processes_prints_what_a_local_run_prints_and_survives_a_lost_executor() {
         let port = free_port();
         let address = format!("127.0.0.1:{port}");
-        let mut scheduler = start(&["cluster", "scheduler", "--bind", &address, "--lost-after", "3"]);
-        await_line(&mut scheduler, "scheduler listening on");
+        let mut scheduler = start(&["cluster", "scheduler", "--bind", &address, "--lost-after", "3"], "warn");
+        assert!(await_line(&scheduler, "scheduler listening on", Duration::from_secs(30)));
         let work = std::env::temp_dir().join(format!("ratesheet-cluster-work-{}", std::process::id()));
         let dirs = [work.join("a"), work.join("b")];
         let mut executors: Vec<Running> = dirs
             .iter()
             .map(|d| {
-                let mut e = start(&[
-                    "cluster",
-                    "executor",
-                    "--scheduler",
-                    &address,
-                    "--slots",
-                    "2",
-                    "--work-dir",
-                    &d.to_string_lossy(),
-                ]);
-                await_line(&mut e, "executor joining");
+                let work_dir = d.to_string_lossy().to_string();
+                let args = ["cluster", "executor", "--scheduler", &address, "--slots", "2", "--work-dir", &work_dir];
+                // Its task log lines tell the test when the executor has finished a task.
+                let e = start(&args, "ballista_executor=info");
+                assert!(await_line(&e, "executor joining", Duration::from_secs(30)));
                 e
             })
             .collect();
@@ -402,21 +400,39 @@ mod processes {
         assert_eq!(remote.1, local.1, "stdout on the cluster differs from the local run");
         assert!(local.1.lines().count() > 5);
 
-        // 2. A heavier job (the demo rows 400 times); one executor is killed while it runs.
-        let heavy = "SELECT district, poisson_fit(breaks, km_years, material, install_decade, diameter_class, soil_corrosivity) AS fit \
-                     FROM pipe_breaks CROSS JOIN generate_series(1, 400) AS copies GROUP BY district ORDER BY district";
-        let want = client(&[file, "--run", heavy, "--format", "csv"], Duration::from_secs(120));
+        // 2. A heavier job (the demo rows 1,000 times, a continuous predictor so that rows are
+        // buffered and shuffled); one executor is killed while it runs.
+        // Four files, so that the first stage has a task on each executor.
+        let big = work.join("big");
+        std::fs::create_dir_all(&big).unwrap();
+        let copies: Vec<String> = (0..4)
+            .map(|k| {
+                format!(
+                    "COPY (SELECT pipe_breaks.* FROM pipe_breaks CROSS JOIN generate_series(1, 250)) TO '{}'",
+                    big.join(format!("part-{k}.parquet")).display()
+                )
+            })
+            .collect();
+        assert_eq!(client(&[file, "--run", &copies.join(";")], Duration::from_secs(60)).0, Some(0));
+        let big = big.to_string_lossy().to_string();
+        let heavy = "SELECT district, poisson_fit(breaks, km_years, material, (2010 - install_decade) / 10.0, diameter_class, soil_corrosivity) AS fit \
+                     FROM big GROUP BY district ORDER BY district";
+        let want = client(&[&big, "--run", heavy, "--format", "csv"], Duration::from_secs(120));
         assert_eq!(want.0, Some(0), "local heavy run: {}", want.2);
         let victim = executors.remove(0);
+        while victim.lines.try_recv().is_ok() {}
+        // Killed (SIGKILL: no goodbye to the scheduler) as soon as it has finished a task of the
+        // job, whose output the next stage still has to fetch from it.
         let killer = std::thread::spawn(move || {
-            std::thread::sleep(Duration::from_millis(1500));
-            drop(victim); // SIGKILL: no goodbye to the scheduler
+            let finished = await_line(&victim, "Finished task", Duration::from_secs(60));
+            drop(victim);
+            finished
         });
         let got = client(
-            &["--cluster", &address, file, "--run", heavy, "--format", "csv"],
+            &["--cluster", &address, &big, "--run", heavy, "--format", "csv"],
             Duration::from_secs(120),
         );
-        killer.join().unwrap();
+        assert!(killer.join().unwrap(), "the executor to be killed finished no task of the job");
         eprintln!(
             "lost executor: exit {:?} after {:.1} s; stderr: {}",
             got.0,
@@ -448,8 +464,8 @@ mod processes {
     fn a_scheduler_without_executors_is_reported_not_waited_on_forever() {
         let port = free_port();
         let address = format!("127.0.0.1:{port}");
-        let mut scheduler = start(&["cluster", "scheduler", "--bind", &address]);
-        await_line(&mut scheduler, "scheduler listening on");
+        let scheduler = start(&["cluster", "scheduler", "--bind", &address], "warn");
+        assert!(await_line(&scheduler, "scheduler listening on", Duration::from_secs(30)));
         let got = client(
             &["--cluster", &address, "--run", "SELECT 1"],
             Duration::from_secs(90),
