@@ -7,7 +7,9 @@
 //!
 //! Options (after `--`): `--cases S,M,L,skewed,groups100k` (default all), `--keep DIR` (write the
 //! data to DIR and keep it, with `ratesheet_times.json` for `scripts/bench_peers.py`),
-//! `--repeats N` (best of N, default 3).
+//! `--repeats N` (best of N, default 3), `--cluster` (also run the floor and the 8-parameter fit of
+//! each case on an in-process Ballista cluster of two executors with one task slot each, and
+//! print the time next to the single-process one and the bytes of shuffle files written).
 //!
 //! Targets are from issue 5; each printed line says `met` or `MISSED`.
 
@@ -255,6 +257,7 @@ struct Options {
     cases: Vec<Case>,
     keep: Option<PathBuf>,
     repeats: usize,
+    cluster: bool,
 }
 
 fn options() -> Options {
@@ -262,6 +265,7 @@ fn options() -> Options {
         cases: CASES.to_vec(),
         keep: None,
         repeats: 3,
+        cluster: false,
     };
     let args: Vec<String> = std::env::args().skip(1).collect();
     let mut i = 0;
@@ -289,6 +293,7 @@ fn options() -> Options {
                 opts.repeats = args.get(i + 1).and_then(|s| s.parse().ok()).unwrap_or(3).max(1);
                 i += 1;
             }
+            "--cluster" => opts.cluster = true,
             // cargo bench passes --bench; anything else is ignored.
             _ => {}
         }
@@ -319,6 +324,70 @@ fn whole_process(file: &Path) -> Option<(Duration, usize)> {
     (r == pid && status == 0).then(|| (wall, usage.ru_maxrss as usize * 1024))
 }
 
+/// An in-process cluster: a scheduler on a free loopback port and two executors with one task
+/// slot each (the machine's two cores), shuffle files under `work`. Returns the scheduler's address.
+async fn start_cluster(work: &Path) -> datafusion::error::Result<String> {
+    use ratesheet::cluster::{executor, scheduler};
+    let listener = scheduler::bind("127.0.0.1:0".parse().expect("an address")).await?;
+    let address = listener.local_addr()?;
+    tokio::spawn(async move { scheduler::serve(listener, &scheduler::SchedulerSettings::default()).await });
+    for k in 0..2 {
+        let mut settings = executor::ExecutorSettings::new("127.0.0.1", address.port());
+        settings.slots = Some(1);
+        settings.work_dir = Some(work.join(format!("executor-{k}")));
+        tokio::spawn(executor::run(settings));
+    }
+    Ok(address.to_string())
+}
+
+/// Bytes of the Arrow IPC shuffle files under `dir`.
+fn shuffle_bytes(dir: &Path) -> u64 {
+    std::fs::read_dir(dir).map_or(0, |entries| {
+        entries
+            .flatten()
+            .map(|e| {
+                let p = e.path();
+                if p.is_dir() {
+                    shuffle_bytes(&p)
+                } else if p.extension().is_some_and(|x| x == "arrow") {
+                    e.metadata().map_or(0, |m| m.len())
+                } else {
+                    0
+                }
+            })
+            .sum()
+    })
+}
+
+/// The floor and the 8-parameter fit of `path` on the cluster at `address`, one line each.
+async fn on_cluster(
+    address: &str,
+    work: &Path,
+    path: &Path,
+    case: &Case,
+    repeats: usize,
+    local: (&Measure, &Measure),
+) -> datafusion::error::Result<()> {
+    let ctx = ratesheet::cli::session::new_cluster_session(&SessionSettings::default(), address).await?;
+    ctx.register_parquet("t", path.to_string_lossy().as_ref(), ParquetReadOptions::default())
+        .await?;
+    let secs = |m: &Measure| m.wall.as_secs_f64();
+    for (label, sql, single) in [("SUM floor", FLOOR_SQL, local.0), ("poisson_fit, 8 parameters", FIT_SQL, local.1)] {
+        let before = shuffle_bytes(work);
+        let m = measure(&ctx, sql, repeats).await?;
+        let shuffled = (shuffle_bytes(work) - before) / repeats as u64;
+        println!(
+            "  cluster, {label:<19} {:>8.3} s  {:>6.2}x single process  shuffled {} ({:.1} bytes per row, {:.0} per group)",
+            secs(&m),
+            secs(&m) / secs(single),
+            mib(shuffled as usize),
+            shuffled as f64 / case.rows as f64,
+            shuffled as f64 / case.groups as f64,
+        );
+    }
+    Ok(())
+}
+
 fn table_stem(file: &Path) -> String {
     ratesheet::cli::session::table_name_for(&file.to_string_lossy())
 }
@@ -340,6 +409,12 @@ async fn main() -> datafusion::error::Result<()> {
         std::thread::available_parallelism().map_or(1, |n| n.get())
     );
     let mut times = serde_json::Map::new();
+    let cluster_work = dir.join("cluster-work");
+    let cluster = if opts.cluster {
+        Some(start_cluster(&cluster_work).await?)
+    } else {
+        None
+    };
     for case in &opts.cases {
         let path = dir.join(format!("bench_{}.parquet", case.name));
         if !path.exists() {
@@ -413,6 +488,9 @@ async fn main() -> datafusion::error::Result<()> {
                 m.cpu_per_wall,
                 mib(m.peak_heap)
             );
+        }
+        if let Some(address) = &cluster {
+            on_cluster(address, &cluster_work, &path, case, repeats, (&floor, &fit)).await?;
         }
         println!(
             "  model columns in memory: {}; fit peak heap / model bytes = {:.2}",

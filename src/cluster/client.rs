@@ -57,6 +57,14 @@ pub async fn connect(state: SessionState, address: &str) -> Result<SessionContex
     let ctx = SessionContext::remote_with_state(&format!("df://{host}:{port}"), state).await?;
     // Ballista's upgrade replaces the function lists with its own; put ours back.
     crate::register_functions(&ctx)?;
+    // Ballista 55's adaptive planner can leave a job running forever when an executor is lost
+    // mid-job (the stage it re-runs is no longer found: "Can't find active stage to update stage
+    // outputs"); the static planner re-runs the lost work. Users may SET it back.
+    ctx.state_ref()
+        .write()
+        .config_mut()
+        .options_mut()
+        .set(ballista_core::config::BALLISTA_ADAPTIVE_PLANNER_ENABLED, "false")?;
     handshake(&ctx, address).await?;
     Ok(ctx)
 }
@@ -84,7 +92,8 @@ async fn handshake(ctx: &SessionContext, address: &str) -> Result<()> {
                 "the cluster at {address} does not know ratesheet's functions: start its scheduler and executors with 'ratesheet cluster scheduler' and 'ratesheet cluster executor'"
             ))
         } else {
-            DataFusionError::Execution(format!("the cluster at {address} did not run a first test job: {}", short(&text)))
+            let why = explain(ctx, e).to_string();
+            DataFusionError::Execution(format!("the cluster at {address} did not run a first test job: {}", short(&why)))
         }
     };
     let plan = ctx
@@ -143,6 +152,13 @@ pub fn explain(ctx: &SessionContext, e: DataFusionError) -> DataFusionError {
              cannot travel to the cluster; write it to a Parquet file the executors can read, then open that"
                 .to_string(),
         );
+    }
+    if let Some(at) = text.split("Error connecting to Ballista scheduler or executor at ").nth(1) {
+        let address = at.split(": ").next().unwrap_or(at).trim();
+        return DataFusionError::Execution(format!(
+            "lost contact with {address} while the statement ran (a cluster process stopped or is unreachable); \
+             run the statement again"
+        ));
     }
     let missing = ["No such file", "not found", "NotFound", "does not exist"].iter().any(|m| text.contains(m));
     let local = text.contains("file://") || text.contains(" /") || text.contains("path: \"/");

@@ -30,9 +30,13 @@ use datafusion::prelude::SessionConfig;
 /// The scheduler's gRPC port when none is given (Ballista's usual one).
 pub const DEFAULT_SCHEDULER_PORT: u16 = 50050;
 
-/// Ballista's session settings with the `ratesheet.*` options registered.
+/// Ballista's session settings with the `ratesheet.*` options registered, and the static
+/// planner (see [`client::connect`] for why not the adaptive one).
 pub fn cluster_config() -> SessionConfig {
-    crate::with_ratesheet_options(SessionConfig::new_with_ballista().with_information_schema(true))
+    let config = SessionConfig::new_with_ballista()
+        .with_information_schema(true)
+        .with_ballista_adaptive_query_planner(false);
+    crate::with_ratesheet_options(config)
 }
 
 /// A session state for any process of a cluster: `config` (which should come from
