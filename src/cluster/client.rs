@@ -224,7 +224,7 @@ impl Drop for CancelOnDrop {
 }
 
 /// The scheduler's ids of the jobs a plan has started.
-fn job_ids(plan: &Arc<dyn ExecutionPlan>) -> Vec<String> {
+pub fn job_ids(plan: &Arc<dyn ExecutionPlan>) -> Vec<String> {
     let mut out = Vec::new();
     if let Some(job) = plan
         .downcast_ref::<DistributedQueryExec<LogicalPlanNode>>()

@@ -215,6 +215,71 @@ async fn fits_on_an_in_process_cluster_equal_the_single_process_results() {
     let _ = std::fs::remove_dir_all(&parts);
 }
 
+#[tokio::test(flavor = "multi_thread", worker_threads = 4)]
+async fn a_dropped_statement_has_its_job_cancelled_on_the_scheduler() {
+    use ballista_core::serde::protobuf::scheduler_grpc_client::SchedulerGrpcClient;
+    use ballista_core::serde::protobuf::{GetJobStatusParams, job_status};
+    use ratesheet::cluster::client::{CancelOnDrop, finish_cancels, job_ids};
+
+    let address = start_cluster(2).await;
+    let settings = SessionSettings::default();
+    let (local, remote) = (new_session(&settings).unwrap(), new_cluster_session(&settings, &address).await.unwrap());
+    // A job of a few seconds: the demo rows 1,000 times in four files, a continuous predictor.
+    let root = std::path::Path::new(env!("CARGO_MANIFEST_DIR"));
+    open_table(&local, &root.join("demo-parquet/pipe_breaks.parquet").to_string_lossy(), None)
+        .await
+        .unwrap();
+    let big = std::env::temp_dir().join(format!("ratesheet-cluster-cancel-{}", std::process::id()));
+    std::fs::create_dir_all(&big).unwrap();
+    for k in 0..4 {
+        let file = big.join(format!("part-{k}.parquet"));
+        run(
+            &local,
+            &format!("COPY (SELECT pipe_breaks.* FROM pipe_breaks CROSS JOIN generate_series(1, 250)) TO '{}'", file.display()),
+        )
+        .await;
+    }
+    let table = open_table(&remote, &big.to_string_lossy(), None).await.unwrap();
+    let sql = format!(
+        "SELECT district, poisson_fit(breaks, km_years, material, (2010 - install_decade) / 10.0, diameter_class) AS fit \
+         FROM {table} GROUP BY district"
+    );
+    let plan = remote.sql(&sql).await.unwrap().create_physical_plan().await.unwrap();
+    let guard = CancelOnDrop::new(&remote, &plan);
+    let running = tokio::spawn(datafusion::physical_plan::collect(plan.clone(), remote.task_ctx()));
+    let deadline = std::time::Instant::now() + Duration::from_secs(30);
+    let job = loop {
+        if let Some(job) = job_ids(&plan).into_iter().next() {
+            break job;
+        }
+        assert!(std::time::Instant::now() < deadline, "the statement never got a job id");
+        tokio::time::sleep(Duration::from_millis(5)).await;
+    };
+    // What Ctrl-C does: the statement's future is dropped with its guard armed.
+    running.abort();
+    drop(guard);
+    finish_cancels(Duration::from_secs(5)).await;
+    let mut scheduler = SchedulerGrpcClient::connect(format!("http://{address}")).await.unwrap();
+    let mut last = None;
+    for _ in 0..100 {
+        let status = scheduler
+            .get_job_status(GetJobStatusParams { job_id: job.clone() })
+            .await
+            .unwrap()
+            .into_inner()
+            .status
+            .and_then(|s| s.status);
+        if let Some(job_status::Status::Failed(failed)) = &status {
+            assert_eq!(failed.error, "Cancelled", "job {job}");
+            let _ = std::fs::remove_dir_all(&big);
+            return;
+        }
+        last = status;
+        tokio::time::sleep(Duration::from_millis(50)).await;
+    }
+    panic!("job {job} was not cancelled on the scheduler; last status {last:?}");
+}
+
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn an_unreachable_scheduler_is_named_within_seconds() {
     // A port that was free a moment ago: nothing listens there.
