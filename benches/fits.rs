@@ -39,6 +39,9 @@ struct CountingAllocator;
 
 static LIVE: AtomicUsize = AtomicUsize::new(0);
 static PEAK: AtomicUsize = AtomicUsize::new(0);
+/// Bytes handed out in all (a realloc that grows counts its growth): every fresh byte is a byte
+/// the kernel may have to zero (page clearing is a first-order cost on these machines).
+static TOTAL: AtomicUsize = AtomicUsize::new(0);
 
 unsafe impl GlobalAlloc for CountingAllocator {
     unsafe fn alloc(&self, layout: Layout) -> *mut u8 {
@@ -46,6 +49,7 @@ unsafe impl GlobalAlloc for CountingAllocator {
         if !p.is_null() {
             let now = LIVE.fetch_add(layout.size(), Ordering::Relaxed) + layout.size();
             PEAK.fetch_max(now, Ordering::Relaxed);
+            TOTAL.fetch_add(layout.size(), Ordering::Relaxed);
         }
         p
     }
@@ -59,6 +63,7 @@ unsafe impl GlobalAlloc for CountingAllocator {
             if new_size >= layout.size() {
                 let now = LIVE.fetch_add(new_size - layout.size(), Ordering::Relaxed) + new_size - layout.size();
                 PEAK.fetch_max(now, Ordering::Relaxed);
+                TOTAL.fetch_add(new_size - layout.size(), Ordering::Relaxed);
             } else {
                 LIVE.fetch_sub(layout.size() - new_size, Ordering::Relaxed);
             }
@@ -198,18 +203,23 @@ const COLLAPSED_SQL: &str = "SELECT region, poisson_fit(count, exposure, flag, k
 struct Measure {
     wall: Duration,
     cpu_per_wall: f64,
+    /// User and system CPU seconds of the run (system time is mostly the kernel zeroing fresh pages).
+    user: f64,
+    system: f64,
     peak_heap: usize,
+    /// Bytes allocated during the run.
+    allocated: usize,
     result_rows: usize,
 }
 
-/// User + system CPU time of this process, from /proc/self/stat (clock ticks of 10 ms).
-fn cpu_time() -> Duration {
+/// User and system CPU time of this process, from /proc/self/stat (clock ticks of 10 ms).
+fn cpu_times() -> (Duration, Duration) {
     let stat = std::fs::read_to_string("/proc/self/stat").unwrap_or_default();
     let after = stat.rsplit(')').next().unwrap_or("");
     let fields: Vec<&str> = after.split_whitespace().collect();
     let ticks = |i: usize| fields.get(i).and_then(|v| v.parse::<u64>().ok()).unwrap_or(0);
     // Fields after the command: state is index 0, utime 11, stime 12.
-    Duration::from_millis((ticks(11) + ticks(12)) * 10)
+    (Duration::from_millis(ticks(11) * 10), Duration::from_millis(ticks(12) * 10))
 }
 
 async fn measure(ctx: &SessionContext, sql: &str, repeats: usize) -> datafusion::error::Result<Measure> {
@@ -217,13 +227,18 @@ async fn measure(ctx: &SessionContext, sql: &str, repeats: usize) -> datafusion:
     for _ in 0..repeats {
         let base = LIVE.load(Ordering::Relaxed);
         PEAK.store(base, Ordering::Relaxed);
-        let (t0, c0) = (Instant::now(), cpu_time());
+        let total0 = TOTAL.load(Ordering::Relaxed);
+        let (t0, (u0, s0)) = (Instant::now(), cpu_times());
         let batches = ctx.sql(sql).await?.collect().await?;
         let wall = t0.elapsed();
-        let cpu = cpu_time() - c0;
+        let (u1, s1) = cpu_times();
+        let (user, system) = ((u1 - u0).as_secs_f64(), (s1 - s0).as_secs_f64());
         let m = Measure {
             wall,
-            cpu_per_wall: cpu.as_secs_f64() / wall.as_secs_f64().max(1e-9),
+            cpu_per_wall: (user + system) / wall.as_secs_f64().max(1e-9),
+            user,
+            system,
+            allocated: TOTAL.load(Ordering::Relaxed) - total0,
             peak_heap: PEAK.load(Ordering::Relaxed).saturating_sub(base),
             result_rows: batches.iter().map(|b| b.num_rows()).sum(),
         };
@@ -302,8 +317,9 @@ fn options() -> Options {
     opts
 }
 
-/// Runs the release binary as a whole process on `file`; returns wall time and peak RSS.
-fn whole_process(file: &Path) -> Option<(Duration, usize)> {
+/// Runs the release binary as a whole process on `file`; returns wall time, peak RSS and the
+/// child's user and system CPU seconds.
+fn whole_process(file: &Path) -> Option<(Duration, usize, f64, f64)> {
     let exe = env!("CARGO_BIN_EXE_ratesheet");
     let sql = FIT_SQL.replace("FROM t", &format!("FROM {}", table_stem(file)));
     let t0 = Instant::now();
@@ -321,7 +337,15 @@ fn whole_process(file: &Path) -> Option<(Duration, usize)> {
     // wait4 gives this child's own peak RSS (std's wait does not report it).
     let r = unsafe { libc::wait4(pid, &mut status, 0, &mut usage) };
     let wall = t0.elapsed();
-    (r == pid && status == 0).then(|| (wall, usage.ru_maxrss as usize * 1024))
+    let seconds = |t: libc::timeval| t.tv_sec as f64 + t.tv_usec as f64 / 1e6;
+    (r == pid && status == 0).then(|| {
+        (
+            wall,
+            usage.ru_maxrss as usize * 1024,
+            seconds(usage.ru_utime),
+            seconds(usage.ru_stime),
+        )
+    })
 }
 
 /// An in-process cluster: a scheduler on a free loopback port and two executors with one task
@@ -373,11 +397,27 @@ async fn on_cluster(
         .await?;
     let secs = |m: &Measure| m.wall.as_secs_f64();
     for (label, sql, single) in [("SUM floor", FLOOR_SQL, local.0), ("poisson_fit, 8 parameters", FIT_SQL, local.1)] {
-        let before = shuffle_bytes(work);
         let m = measure(&ctx, sql, repeats).await?;
-        let shuffled = (shuffle_bytes(work) - before) / repeats as u64;
+        // Ballista removes a job's shuffle files once its result is read: watch the folder
+        // during one more run and keep the largest total seen.
+        let before = shuffle_bytes(work);
+        let watching = Arc::new(std::sync::atomic::AtomicBool::new(true));
+        let watcher = {
+            let (work, watching) = (work.to_path_buf(), watching.clone());
+            std::thread::spawn(move || {
+                let mut most = 0;
+                while watching.load(Ordering::Relaxed) {
+                    most = most.max(shuffle_bytes(&work));
+                    std::thread::sleep(Duration::from_millis(2));
+                }
+                most.max(shuffle_bytes(&work))
+            })
+        };
+        ctx.sql(sql).await?.collect().await?;
+        watching.store(false, Ordering::Relaxed);
+        let shuffled = watcher.join().unwrap_or(0).saturating_sub(before);
         println!(
-            "  cluster, {label:<19} {:>8.3} s  {:>6.2}x single process  shuffled {} ({:.1} bytes per row, {:.0} per group)",
+            "  cluster, {label:<19} {:>8.3} s  {:>6.2}x single process  shuffle files {} ({:.1} bytes per row, {:.0} per group)",
             secs(&m),
             secs(&m) / secs(single),
             mib(shuffled as usize),
@@ -480,13 +520,16 @@ async fn main() -> datafusion::error::Result<()> {
         }
         for (label, m) in rows {
             println!(
-                "  {label:<28} {:>8.3} s  {:>6.2}x floor  {:>7.2} M rows/s  {:>9.0} groups/s  cpu {:.2} cores  peak heap {}",
+                "  {label:<28} {:>8.3} s  {:>6.2}x floor  {:>7.2} M rows/s  {:>9.0} groups/s  cpu {:.2} cores (user {:.2} s, system {:.2} s)  peak heap {}  allocated {}",
                 secs(m),
                 secs(m) / secs(&floor),
                 case.rows as f64 / secs(m) / 1e6,
                 m.result_rows as f64 / secs(m),
                 m.cpu_per_wall,
-                mib(m.peak_heap)
+                m.user,
+                m.system,
+                mib(m.peak_heap),
+                mib(m.allocated)
             );
         }
         if let Some(address) = &cluster {
@@ -541,9 +584,9 @@ async fn main() -> datafusion::error::Result<()> {
             );
         }
         if case.name == "L" {
-            if let Some((wall, rss)) = whole_process(&path) {
+            if let Some((wall, rss, user, system)) = whole_process(&path) {
                 println!(
-                    "  whole process (release binary, fit to CSV): {:.2} s, peak RSS {}; peak RSS / model bytes = {:.2}, target <= 2: {}",
+                    "  whole process (release binary, fit to CSV): {:.2} s (user {user:.2} s, system {system:.2} s), peak RSS {}; peak RSS / model bytes = {:.2}, target <= 2: {}",
                     wall.as_secs_f64(),
                     mib(rss),
                     rss as f64 / model_bytes as f64,

@@ -174,6 +174,7 @@ pub async fn collect_with_progress(
         return result;
     }
     let total = total_rows(&files);
+    let on_cluster = crate::cluster::client::cluster_of(ctx).map(|c| c.address.clone());
     let start = Instant::now();
     tokio::pin!(run);
     let mut line = ProgressLine { shown: false };
@@ -184,7 +185,12 @@ pub async fn collect_with_progress(
             _ = ticker.tick() => {
                 let now = fit_counts();
                 let fitting = Fitting { started: now.0 - at_start.0, fitted: now.1 - at_start.1 };
-                line.show(&progress_text(rows_read(&files), total, fitting, start.elapsed()));
+                // On a cluster the work and its counters are in other processes: say where it runs.
+                let text = match &on_cluster {
+                    Some(address) => format!("running on the cluster at {address}… {:.1} s", start.elapsed().as_secs_f64()),
+                    None => progress_text(rows_read(&files), total, fitting, start.elapsed()),
+                };
+                line.show(&text);
             }
         }
     };

@@ -165,6 +165,12 @@ async fn open_unguarded(ctx: &SessionContext, path: &str, name: Option<&str>) ->
     if crate::storage::is_remote(path) {
         return open_remote(ctx, path, base).await;
     }
+    if let Some((scheme, _)) = path.split_once("://") {
+        return Err(DataFusionError::Plan(format!(
+            "{path}: {scheme}:// is not a storage ratesheet reads; it opens local paths and s3:// URLs \
+             (S3-compatible servers too, through AWS_ENDPOINT_URL)"
+        )));
+    }
     let format = format_of(path)?;
     let cluster = crate::cluster::client::cluster_of(ctx);
     if let (Some(cluster), "xlsx") = (&cluster, format) {

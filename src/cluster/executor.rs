@@ -58,8 +58,9 @@ fn free_port(host: &str) -> Result<u16> {
         .map_err(|e| DataFusionError::Execution(format!("executor: no free port on {host}: {e}")))
 }
 
-/// Ballista's process settings for `settings`, with ratesheet's config, functions and runtime.
-fn process_config(settings: &ExecutorSettings) -> Result<ExecutorProcessConfig> {
+/// Ballista's process settings for `settings`, with ratesheet's config, functions and runtime
+/// (what [`run`] starts; public so that an embedding program can adjust it first).
+pub fn process_config(settings: &ExecutorSettings) -> Result<ExecutorProcessConfig> {
     let state = cluster_state(cluster_config())?;
     let data_port = match settings.data_port {
         Some(p) => p,

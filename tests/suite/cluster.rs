@@ -280,6 +280,51 @@ async fn a_dropped_statement_has_its_job_cancelled_on_the_scheduler() {
     panic!("job {job} was not cancelled on the scheduler; last status {last:?}");
 }
 
+/// `ratesheet_version()` as an executor of another build would answer it.
+#[derive(Debug, PartialEq, Eq, Hash)]
+struct OtherVersion(datafusion::logical_expr::Signature);
+
+impl datafusion::logical_expr::ScalarUDFImpl for OtherVersion {
+    fn name(&self) -> &str {
+        "ratesheet_version"
+    }
+    fn signature(&self) -> &datafusion::logical_expr::Signature {
+        &self.0
+    }
+    fn return_type(&self, _: &[DataType]) -> datafusion::error::Result<DataType> {
+        Ok(DataType::Utf8)
+    }
+    fn invoke_with_args(
+        &self,
+        args: datafusion::logical_expr::ScalarFunctionArgs,
+    ) -> datafusion::error::Result<datafusion::logical_expr::ColumnarValue> {
+        let values = datafusion::arrow::array::StringArray::from(vec!["0.0.1-other"; args.number_rows]);
+        Ok(datafusion::logical_expr::ColumnarValue::Array(std::sync::Arc::new(values)))
+    }
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 4)]
+async fn a_cluster_of_another_version_is_refused_by_name() {
+    let listener = bind("127.0.0.1:0".parse().unwrap()).await.unwrap();
+    let address = listener.local_addr().unwrap();
+    tokio::spawn(async move { serve(listener, &SchedulerSettings::default()).await });
+    let mut config = ratesheet::cluster::executor::process_config(&ExecutorSettings::new("127.0.0.1", address.port())).unwrap();
+    let state = ratesheet::cluster::cluster_state(ratesheet::cluster::cluster_config()).unwrap();
+    let mut registry = ballista_core::registry::BallistaFunctionRegistry::from(&state);
+    let other = OtherVersion(datafusion::logical_expr::Signature::nullary(datafusion::logical_expr::Volatility::Volatile));
+    registry
+        .scalar_functions
+        .insert("ratesheet_version".into(), std::sync::Arc::new(datafusion::logical_expr::ScalarUDF::new_from_impl(other)));
+    config.override_function_registry = Some(std::sync::Arc::new(registry));
+    tokio::spawn(ballista_executor::executor_process::start_executor_process(std::sync::Arc::new(config)));
+    let e = match new_cluster_session(&SessionSettings::default(), &address.to_string()).await {
+        Err(e) => e.to_string(),
+        Ok(_) => panic!("a cluster of another version was accepted"),
+    };
+    assert!(e.contains("version mismatch"), "{e}");
+    assert!(e.contains("run ratesheet 0.0.1-other"), "{e}");
+}
+
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn an_unreachable_scheduler_is_named_within_seconds() {
     // A port that was free a moment ago: nothing listens there.
@@ -320,16 +365,16 @@ async fn spreadsheets_and_unreadable_paths_are_refused_on_a_cluster() {
 
 /// The real processes: `ratesheet cluster scheduler`, two `ratesheet cluster executor`s and
 /// `ratesheet --cluster`, all on loopback.
-mod processes {
+pub mod processes {
     use std::io::{BufRead, BufReader};
     use std::process::{Child, Command, Stdio};
     use std::time::{Duration, Instant};
 
     /// A started process, killed when dropped (a failing test leaves nothing running); its
     /// stderr lines arrive on `lines`.
-    struct Running {
+    pub struct Running {
         child: Child,
-        lines: std::sync::mpsc::Receiver<String>,
+        pub lines: std::sync::mpsc::Receiver<String>,
     }
 
     impl Drop for Running {
@@ -341,8 +386,14 @@ mod processes {
 
     /// Starts the program with `args`; `log` is its RATESHEET_LOG.
     fn start(args: &[&str], log: &str) -> Running {
+        start_with(args, log, &[])
+    }
+
+    /// As [`start`], with extra environment variables.
+    pub fn start_with(args: &[&str], log: &str, env: &[(&str, String)]) -> Running {
         let mut child = Command::new(env!("CARGO_BIN_EXE_ratesheet"))
             .current_dir(env!("CARGO_MANIFEST_DIR"))
+            .envs(env.iter().map(|(k, v)| (*k, v.as_str())))
             .env("RATESHEET_LOG", log)
             .args(args)
             .stdin(Stdio::null())
@@ -361,7 +412,7 @@ mod processes {
     }
 
     /// Waits until the process writes a line containing `text` to stderr.
-    fn await_line(p: &Running, text: &str, limit: Duration) -> bool {
+    pub fn await_line(p: &Running, text: &str, limit: Duration) -> bool {
         let deadline = Instant::now() + limit;
         while Instant::now() < deadline {
             if let Ok(line) = p.lines.recv_timeout(Duration::from_millis(50))
@@ -394,9 +445,15 @@ mod processes {
 
     /// Runs the client to the end (or kills it after `limit`): exit code, stdout, stderr, time.
     fn client(args: &[&str], limit: Duration) -> (Option<i32>, String, String, Duration) {
+        client_with(args, limit, &[])
+    }
+
+    /// As [`client`], with extra environment variables.
+    pub fn client_with(args: &[&str], limit: Duration, env: &[(&str, String)]) -> (Option<i32>, String, String, Duration) {
         let started = Instant::now();
         let mut child = Command::new(env!("CARGO_BIN_EXE_ratesheet"))
             .current_dir(env!("CARGO_MANIFEST_DIR"))
+            .envs(env.iter().map(|(k, v)| (*k, v.as_str())))
             .args(args)
             .stdin(Stdio::null())
             .stdout(Stdio::piped())
@@ -438,7 +495,7 @@ mod processes {
         }
     }
 
-    fn free_port() -> u16 {
+    pub fn free_port() -> u16 {
         std::net::TcpListener::bind("127.0.0.1:0").unwrap().local_addr().unwrap().port()
     }
 
