@@ -219,7 +219,10 @@ fn cpu_times() -> (Duration, Duration) {
     let fields: Vec<&str> = after.split_whitespace().collect();
     let ticks = |i: usize| fields.get(i).and_then(|v| v.parse::<u64>().ok()).unwrap_or(0);
     // Fields after the command: state is index 0, utime 11, stime 12.
-    (Duration::from_millis(ticks(11) * 10), Duration::from_millis(ticks(12) * 10))
+    (
+        Duration::from_millis(ticks(11) * 10),
+        Duration::from_millis(ticks(12) * 10),
+    )
 }
 
 async fn measure(ctx: &SessionContext, sql: &str, repeats: usize) -> datafusion::error::Result<Measure> {
@@ -396,7 +399,10 @@ async fn on_cluster(
     ctx.register_parquet("t", path.to_string_lossy().as_ref(), ParquetReadOptions::default())
         .await?;
     let secs = |m: &Measure| m.wall.as_secs_f64();
-    for (label, sql, single) in [("SUM floor", FLOOR_SQL, local.0), ("poisson_fit, 8 parameters", FIT_SQL, local.1)] {
+    for (label, sql, single) in [
+        ("SUM floor", FLOOR_SQL, local.0),
+        ("poisson_fit, 8 parameters", FIT_SQL, local.1),
+    ] {
         let m = measure(&ctx, sql, repeats).await?;
         // Ballista removes a job's shuffle files once its result is read: watch the folder
         // during one more run and keep the largest total seen.

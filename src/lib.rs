@@ -10,13 +10,13 @@ pub use sql::{register_functions, register_functions_on_state, session_state, wi
 /// The command-line program (feature `cli`, on by default).
 #[cfg(feature = "cli")]
 pub mod cli;
+/// Apache Ballista: scheduler and executor processes with ratesheet's functions, and a client
+/// session that runs every statement on such a cluster (feature `cluster`, part of `cli`).
+#[cfg(feature = "cluster")]
+pub mod cluster;
 /// The seeded generator of the demo data (feature `cli`).
 #[cfg(feature = "cli")]
 pub mod demo;
 /// `s3://` object storage from the AWS environment variables (feature `s3`, part of `cli`).
 #[cfg(feature = "s3")]
 pub mod storage;
-/// Apache Ballista: scheduler and executor processes with ratesheet's functions, and a client
-/// session that runs every statement on such a cluster (feature `cluster`, part of `cli`).
-#[cfg(feature = "cluster")]
-pub mod cluster;

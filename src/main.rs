@@ -163,7 +163,10 @@ async fn run_cluster_process(words: Vec<String>) -> ExitCode {
                 }
             };
             let mut settings = ratesheet::cluster::executor::ExecutorSettings::new(host, port);
-            match bind.rsplit_once(':').filter(|(_, p)| p.chars().all(|c| c.is_ascii_digit())) {
+            match bind
+                .rsplit_once(':')
+                .filter(|(_, p)| p.chars().all(|c| c.is_ascii_digit()))
+            {
                 Some((h, p)) => match p.parse::<u16>() {
                     Ok(p) if p > 0 => {
                         settings.bind_host = h.to_string();

@@ -301,7 +301,11 @@ pub async fn check_cluster_rows(ctx: &SessionContext, name: &str, path: &str, ro
     if !rows_here {
         return Ok(());
     }
-    let batches = ctx.sql(&format!("SELECT 1 FROM \"{name}\" LIMIT 1")).await?.collect().await?;
+    let batches = ctx
+        .sql(&format!("SELECT 1 FROM \"{name}\" LIMIT 1"))
+        .await?
+        .collect()
+        .await?;
     if batches.iter().any(|b| b.num_rows() > 0) {
         return Ok(());
     }

@@ -93,7 +93,10 @@ async fn handshake(ctx: &SessionContext, address: &str) -> Result<()> {
             ))
         } else {
             let why = explain(ctx, e).to_string();
-            DataFusionError::Execution(format!("the cluster at {address} did not run a first test job: {}", short(&why)))
+            DataFusionError::Execution(format!(
+                "the cluster at {address} did not run a first test job: {}",
+                short(&why)
+            ))
         }
     };
     let plan = ctx
@@ -128,8 +131,15 @@ async fn handshake(ctx: &SessionContext, address: &str) -> Result<()> {
     guard.disarm();
     let theirs = batches
         .first()
-        .and_then(|b| b.column(0).as_any().downcast_ref::<datafusion::arrow::array::StringArray>().map(|a| a.value(0).to_string()))
-        .ok_or_else(|| DataFusionError::Execution(format!("the cluster at {address} gave an empty answer to the test job")))?;
+        .and_then(|b| {
+            b.column(0)
+                .as_any()
+                .downcast_ref::<datafusion::arrow::array::StringArray>()
+                .map(|a| a.value(0).to_string())
+        })
+        .ok_or_else(|| {
+            DataFusionError::Execution(format!("the cluster at {address} gave an empty answer to the test job"))
+        })?;
     if theirs != VERSION {
         return Err(DataFusionError::Execution(format!(
             "version mismatch: this is ratesheet {VERSION}, the executors of the cluster at {address} run ratesheet {theirs}; run the same build everywhere"
@@ -153,14 +163,19 @@ pub fn explain(ctx: &SessionContext, e: DataFusionError) -> DataFusionError {
                 .to_string(),
         );
     }
-    if let Some(at) = text.split("Error connecting to Ballista scheduler or executor at ").nth(1) {
+    if let Some(at) = text
+        .split("Error connecting to Ballista scheduler or executor at ")
+        .nth(1)
+    {
         let address = at.split(": ").next().unwrap_or(at).trim();
         return DataFusionError::Execution(format!(
             "lost contact with {address} while the statement ran (a cluster process stopped or is unreachable); \
              run the statement again"
         ));
     }
-    let missing = ["No such file", "not found", "NotFound", "does not exist"].iter().any(|m| text.contains(m));
+    let missing = ["No such file", "not found", "NotFound", "does not exist"]
+        .iter()
+        .any(|m| text.contains(m));
     let local = text.contains("file://") || text.contains(" /") || text.contains("path: \"/");
     if missing && local && !text.contains("s3://") {
         DataFusionError::Execution(format!(
@@ -206,7 +221,9 @@ impl Drop for CancelOnDrop {
     fn drop(&mut self) {
         let Some(url) = self.scheduler_url.take() else { return };
         let jobs = job_ids(&self.plan);
-        let Ok(runtime) = tokio::runtime::Handle::try_current() else { return };
+        let Ok(runtime) = tokio::runtime::Handle::try_current() else {
+            return;
+        };
         if jobs.is_empty() {
             return;
         }
@@ -245,7 +262,9 @@ pub async fn cancel_job(scheduler_url: &str, job: &str) -> Result<()> {
         .await
         .map_err(|e| failed(e.to_string()))?;
     client
-        .cancel_job(CancelJobParams { job_id: job.to_string() })
+        .cancel_job(CancelJobParams {
+            job_id: job.to_string(),
+        })
         .await
         .map_err(|e| failed(e.to_string()))?;
     Ok(())

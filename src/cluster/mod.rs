@@ -53,7 +53,8 @@ pub fn cluster_state(config: SessionConfig) -> Result<SessionState> {
 /// A runtime with `s3://` stores built from this process's environment; spill files go to
 /// `work_dir` when given.
 pub fn cluster_runtime(work_dir: Option<&Path>) -> Result<Arc<RuntimeEnv>> {
-    let mut builder = RuntimeEnvBuilder::new().with_object_store_registry(Arc::new(crate::storage::EnvObjectStores::new()));
+    let mut builder =
+        RuntimeEnvBuilder::new().with_object_store_registry(Arc::new(crate::storage::EnvObjectStores::new()));
     if let Some(dir) = work_dir {
         builder = builder.with_temp_file_path(dir);
     }
@@ -64,7 +65,10 @@ pub fn cluster_runtime(work_dir: Option<&Path>) -> Result<Arc<RuntimeEnv>> {
 /// else with a message naming `what`.
 pub fn host_and_port(text: &str, what: &str) -> std::result::Result<(String, u16), String> {
     let text = text.trim();
-    let bare = text.strip_prefix("df://").or_else(|| text.strip_prefix("http://")).unwrap_or(text);
+    let bare = text
+        .strip_prefix("df://")
+        .or_else(|| text.strip_prefix("http://"))
+        .unwrap_or(text);
     let (host, port) = match bare.rsplit_once(':') {
         Some((h, p)) => {
             let port = p
@@ -75,7 +79,9 @@ pub fn host_and_port(text: &str, what: &str) -> std::result::Result<(String, u16
         None => (bare, DEFAULT_SCHEDULER_PORT),
     };
     if host.is_empty() || host.contains('/') || port == 0 {
-        return Err(format!("{what} {text}: expected HOST:PORT, such as 127.0.0.1:{DEFAULT_SCHEDULER_PORT}"));
+        return Err(format!(
+            "{what} {text}: expected HOST:PORT, such as 127.0.0.1:{DEFAULT_SCHEDULER_PORT}"
+        ));
     }
     Ok((host.trim_start_matches('[').trim_end_matches(']').to_string(), port))
 }
@@ -118,12 +124,22 @@ mod tests {
 
     #[test]
     fn addresses_are_read_with_a_default_port_and_refused_by_name() {
-        assert_eq!(host_and_port("127.0.0.1:7000", "--cluster"), Ok(("127.0.0.1".into(), 7000)));
-        assert_eq!(host_and_port("node-a", "--cluster"), Ok(("node-a".into(), DEFAULT_SCHEDULER_PORT)));
+        assert_eq!(
+            host_and_port("127.0.0.1:7000", "--cluster"),
+            Ok(("127.0.0.1".into(), 7000))
+        );
+        assert_eq!(
+            host_and_port("node-a", "--cluster"),
+            Ok(("node-a".into(), DEFAULT_SCHEDULER_PORT))
+        );
         assert_eq!(host_and_port("df://node-a:1", "--cluster"), Ok(("node-a".into(), 1)));
         let e = host_and_port("node-a:http", "--cluster").unwrap_err();
         assert!(e.starts_with("--cluster node-a:http: the port"), "{e}");
-        assert!(host_and_port(":7000", "--scheduler").unwrap_err().contains("expected HOST:PORT"));
+        assert!(
+            host_and_port(":7000", "--scheduler")
+                .unwrap_err()
+                .contains("expected HOST:PORT")
+        );
     }
 
     #[test]

@@ -56,7 +56,9 @@ pub async fn serve(listener: TcpListener, settings: &SchedulerSettings) -> Resul
     config.bind_host = address.ip().to_string();
     config.executor_timeout_seconds = lost_after;
     config.expire_dead_executor_interval_seconds = 1;
-    let cluster = BallistaCluster::new_from_config(&config).await.map_err(ballista_error)?;
+    let cluster = BallistaCluster::new_from_config(&config)
+        .await
+        .map_err(ballista_error)?;
     let scheduler = create_scheduler::<LogicalPlanNode, PhysicalPlanNode>(cluster, Arc::new(config))
         .await
         .map_err(ballista_error)?;

@@ -40,7 +40,12 @@ fn assert_same(what: &str, local: &[RecordBatch], remote: &[RecordBatch], rel: f
     assert_eq!(local.num_columns(), remote.num_columns(), "{what}: columns");
     for c in 0..local.num_columns() {
         let name = local.schema().field(c).name().clone();
-        same_array(&format!("{what}: column {name}"), local.column(c), remote.column(c), rel);
+        same_array(
+            &format!("{what}: column {name}"),
+            local.column(c),
+            remote.column(c),
+            rel,
+        );
     }
 }
 
@@ -81,7 +86,10 @@ fn same_array(what: &str, a: &ArrayRef, b: &ArrayRef, rel: f64) {
         }
         _ => {
             for r in 0..a.len() {
-                let (u, v) = (array_value_to_string(a, r).unwrap(), array_value_to_string(b, r).unwrap());
+                let (u, v) = (
+                    array_value_to_string(a, r).unwrap(),
+                    array_value_to_string(b, r).unwrap(),
+                );
                 assert_eq!(u, v, "{what} row {r}");
             }
         }
@@ -101,7 +109,9 @@ async fn run(ctx: &SessionContext, sql: &str) -> Vec<RecordBatch> {
 async fn open_both(local: &SessionContext, remote: &SessionContext, paths: &[String]) {
     for p in paths {
         let a = open_table(local, p, None).await.unwrap();
-        let b = open_table(remote, p, None).await.unwrap_or_else(|e| panic!("{p} on the cluster: {e}"));
+        let b = open_table(remote, p, None)
+            .await
+            .unwrap_or_else(|e| panic!("{p} on the cluster: {e}"));
         assert_eq!(a, b, "{p}: the same table name locally and on the cluster");
     }
 }
@@ -131,11 +141,20 @@ async fn fits_on_an_in_process_cluster_equal_the_single_process_results() {
         .unwrap();
 
     // Held-in reference data (tests/fixtures/reference): one statement per family and helper.
-    let data = |f: &str| fixture_path(&format!("reference/data/{f}")).to_string_lossy().to_string();
+    let data = |f: &str| {
+        fixture_path(&format!("reference/data/{f}"))
+            .to_string_lossy()
+            .to_string()
+    };
     open_both(
         &local,
         &remote,
-        &[data("insurance.csv"), data("breslow.csv"), data("doctorvisits.csv"), data("mmmec.csv")],
+        &[
+            data("insurance.csv"),
+            data("breslow.csv"),
+            data("doctorvisits.csv"),
+            data("mmmec.csv"),
+        ],
     )
     .await;
     let reference = [
@@ -162,9 +181,16 @@ async fn fits_on_an_in_process_cluster_equal_the_single_process_results() {
     let at_90 = run(&remote, by_district).await;
     let level = |b: &[RecordBatch]| {
         let fit = b[0].column(1).as_struct();
-        fit.column_by_name("level").unwrap().as_primitive::<Float64Type>().value(0)
+        fit.column_by_name("level")
+            .unwrap()
+            .as_primitive::<Float64Type>()
+            .value(0)
     };
-    assert_eq!((level(&at_95), level(&at_90)), (0.95, 0.9), "SET ratesheet.level reached the cluster");
+    assert_eq!(
+        (level(&at_95), level(&at_90)),
+        (0.95, 0.9),
+        "SET ratesheet.level reached the cluster"
+    );
 
     // The demo script, statement by statement, on the demo's Parquet file and CSV file.
     let root = std::path::Path::new(env!("CARGO_MANIFEST_DIR"));
@@ -191,7 +217,10 @@ async fn fits_on_an_in_process_cluster_equal_the_single_process_results() {
         let file = parts.join(format!("part-{k}.parquet"));
         run(
             &local,
-            &format!("COPY (SELECT * FROM pipe_breaks WHERE district = '{district}') TO '{}'", file.display()),
+            &format!(
+                "COPY (SELECT * FROM pipe_breaks WHERE district = '{district}') TO '{}'",
+                file.display()
+            ),
         )
         .await;
     }
@@ -211,7 +240,12 @@ async fn fits_on_an_in_process_cluster_equal_the_single_process_results() {
     );
     assert_eq!(compare(&local, &remote, &[split.as_str()]).await, 1);
     let whole = split.replace(&format!("FROM {table}"), "FROM pipe_breaks");
-    assert_same("split vs whole file", &run(&local, &whole).await, &run(&remote, &split).await, 1e-12);
+    assert_same(
+        "split vs whole file",
+        &run(&local, &whole).await,
+        &run(&remote, &split).await,
+        1e-12,
+    );
     let _ = std::fs::remove_dir_all(&parts);
 }
 
@@ -223,19 +257,29 @@ async fn a_dropped_statement_has_its_job_cancelled_on_the_scheduler() {
 
     let address = start_cluster(2).await;
     let settings = SessionSettings::default();
-    let (local, remote) = (new_session(&settings).unwrap(), new_cluster_session(&settings, &address).await.unwrap());
+    let (local, remote) = (
+        new_session(&settings).unwrap(),
+        new_cluster_session(&settings, &address).await.unwrap(),
+    );
     // A job of a few seconds: the demo rows 1,000 times in four files, a continuous predictor.
     let root = std::path::Path::new(env!("CARGO_MANIFEST_DIR"));
-    open_table(&local, &root.join("demo-parquet/pipe_breaks.parquet").to_string_lossy(), None)
-        .await
-        .unwrap();
+    open_table(
+        &local,
+        &root.join("demo-parquet/pipe_breaks.parquet").to_string_lossy(),
+        None,
+    )
+    .await
+    .unwrap();
     let big = std::env::temp_dir().join(format!("ratesheet-cluster-cancel-{}", std::process::id()));
     std::fs::create_dir_all(&big).unwrap();
     for k in 0..4 {
         let file = big.join(format!("part-{k}.parquet"));
         run(
             &local,
-            &format!("COPY (SELECT pipe_breaks.* FROM pipe_breaks CROSS JOIN generate_series(1, 250)) TO '{}'", file.display()),
+            &format!(
+                "COPY (SELECT pipe_breaks.* FROM pipe_breaks CROSS JOIN generate_series(1, 250)) TO '{}'",
+                file.display()
+            ),
         )
         .await;
     }
@@ -299,7 +343,9 @@ impl datafusion::logical_expr::ScalarUDFImpl for OtherVersion {
         args: datafusion::logical_expr::ScalarFunctionArgs,
     ) -> datafusion::error::Result<datafusion::logical_expr::ColumnarValue> {
         let values = datafusion::arrow::array::StringArray::from(vec!["0.0.1-other"; args.number_rows]);
-        Ok(datafusion::logical_expr::ColumnarValue::Array(std::sync::Arc::new(values)))
+        Ok(datafusion::logical_expr::ColumnarValue::Array(std::sync::Arc::new(
+            values,
+        )))
     }
 }
 
@@ -308,15 +354,21 @@ async fn a_cluster_of_another_version_is_refused_by_name() {
     let listener = bind("127.0.0.1:0".parse().unwrap()).await.unwrap();
     let address = listener.local_addr().unwrap();
     tokio::spawn(async move { serve(listener, &SchedulerSettings::default()).await });
-    let mut config = ratesheet::cluster::executor::process_config(&ExecutorSettings::new("127.0.0.1", address.port())).unwrap();
+    let mut config =
+        ratesheet::cluster::executor::process_config(&ExecutorSettings::new("127.0.0.1", address.port())).unwrap();
     let state = ratesheet::cluster::cluster_state(ratesheet::cluster::cluster_config()).unwrap();
     let mut registry = ballista_core::registry::BallistaFunctionRegistry::from(&state);
-    let other = OtherVersion(datafusion::logical_expr::Signature::nullary(datafusion::logical_expr::Volatility::Volatile));
-    registry
-        .scalar_functions
-        .insert("ratesheet_version".into(), std::sync::Arc::new(datafusion::logical_expr::ScalarUDF::new_from_impl(other)));
+    let other = OtherVersion(datafusion::logical_expr::Signature::nullary(
+        datafusion::logical_expr::Volatility::Volatile,
+    ));
+    registry.scalar_functions.insert(
+        "ratesheet_version".into(),
+        std::sync::Arc::new(datafusion::logical_expr::ScalarUDF::new_from_impl(other)),
+    );
     config.override_function_registry = Some(std::sync::Arc::new(registry));
-    tokio::spawn(ballista_executor::executor_process::start_executor_process(std::sync::Arc::new(config)));
+    tokio::spawn(ballista_executor::executor_process::start_executor_process(
+        std::sync::Arc::new(config),
+    ));
     let e = match new_cluster_session(&SessionSettings::default(), &address.to_string()).await {
         Err(e) => e.to_string(),
         Ok(_) => panic!("a cluster of another version was accepted"),
@@ -328,24 +380,37 @@ async fn a_cluster_of_another_version_is_refused_by_name() {
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn an_unreachable_scheduler_is_named_within_seconds() {
     // A port that was free a moment ago: nothing listens there.
-    let port = std::net::TcpListener::bind("127.0.0.1:0").unwrap().local_addr().unwrap().port();
+    let port = std::net::TcpListener::bind("127.0.0.1:0")
+        .unwrap()
+        .local_addr()
+        .unwrap()
+        .port();
     let address = format!("127.0.0.1:{port}");
     let started = std::time::Instant::now();
     let e = match new_cluster_session(&SessionSettings::default(), &address).await {
         Err(e) => e.to_string(),
         Ok(_) => panic!("connected to {address}, where nothing listens"),
     };
-    assert!(started.elapsed() < Duration::from_secs(10), "took {:?}", started.elapsed());
+    assert!(
+        started.elapsed() < Duration::from_secs(10),
+        "took {:?}",
+        started.elapsed()
+    );
     assert!(e.contains(&format!("cannot reach the scheduler at {address}")), "{e}");
 }
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn spreadsheets_and_unreadable_paths_are_refused_on_a_cluster() {
     let address = start_cluster(1).await;
-    let remote = new_cluster_session(&SessionSettings::default(), &address).await.unwrap();
+    let remote = new_cluster_session(&SessionSettings::default(), &address)
+        .await
+        .unwrap();
     let book = std::env::temp_dir().join(format!("ratesheet-cluster-{}.xlsx", std::process::id()));
     std::fs::write(&book, b"not opened").unwrap();
-    let e = open_table(&remote, &book.to_string_lossy(), None).await.unwrap_err().to_string();
+    let e = open_table(&remote, &book.to_string_lossy(), None)
+        .await
+        .unwrap_err()
+        .to_string();
     assert!(e.contains("cannot travel to the cluster at"), "{e}");
     let _ = std::fs::remove_file(&book);
     // A file this machine reads and the cluster does not: on one machine every process sees the
@@ -361,7 +426,6 @@ async fn spreadsheets_and_unreadable_paths_are_refused_on_a_cluster() {
     assert!(e.contains("finds no rows there, while this machine does"), "{e}");
     assert!(e.contains("scheduler and executors read local paths themselves"), "{e}");
 }
-
 
 /// The real processes: `ratesheet cluster scheduler`, two `ratesheet cluster executor`s and
 /// `ratesheet --cluster`, all on loopback.
@@ -449,7 +513,11 @@ pub mod processes {
     }
 
     /// As [`client`], with extra environment variables.
-    pub fn client_with(args: &[&str], limit: Duration, env: &[(&str, String)]) -> (Option<i32>, String, String, Duration) {
+    pub fn client_with(
+        args: &[&str],
+        limit: Duration,
+        env: &[(&str, String)],
+    ) -> (Option<i32>, String, String, Duration) {
         let started = Instant::now();
         let mut child = Command::new(env!("CARGO_BIN_EXE_ratesheet"))
             .current_dir(env!("CARGO_MANIFEST_DIR"))
@@ -491,12 +559,18 @@ pub mod processes {
         } else if let Some(us) = tail.strip_suffix("µs") {
             us.parse::<f64>().map_or(0.0, |v| v / 1e6)
         } else {
-            tail.strip_suffix('s').and_then(|s| s.parse::<f64>().ok()).unwrap_or(0.0)
+            tail.strip_suffix('s')
+                .and_then(|s| s.parse::<f64>().ok())
+                .unwrap_or(0.0)
         }
     }
 
     pub fn free_port() -> u16 {
-        std::net::TcpListener::bind("127.0.0.1:0").unwrap().local_addr().unwrap().port()
+        std::net::TcpListener::bind("127.0.0.1:0")
+            .unwrap()
+            .local_addr()
+            .unwrap()
+            .port()
     }
 
     const PER_DISTRICT: &str = "SELECT district, poisson_fit(breaks, km_years, material, install_decade, diameter_class, soil_corrosivity) AS fit \
@@ -506,15 +580,31 @@ pub mod processes {
     fn a_cluster_of_real_processes_prints_what_a_local_run_prints_and_survives_a_lost_executor() {
         let port = free_port();
         let address = format!("127.0.0.1:{port}");
-        let mut scheduler = start(&["cluster", "scheduler", "--bind", &address, "--lost-after", "5"], "warn");
-        assert!(await_line(&scheduler, "scheduler listening on", Duration::from_secs(30)));
+        let mut scheduler = start(
+            &["cluster", "scheduler", "--bind", &address, "--lost-after", "5"],
+            "warn",
+        );
+        assert!(await_line(
+            &scheduler,
+            "scheduler listening on",
+            Duration::from_secs(30)
+        ));
         let work = std::env::temp_dir().join(format!("ratesheet-cluster-work-{}", std::process::id()));
         let dirs = [work.join("a"), work.join("b")];
         let mut executors: Vec<Running> = dirs
             .iter()
             .map(|d| {
                 let work_dir = d.to_string_lossy().to_string();
-                let args = ["cluster", "executor", "--scheduler", &address, "--slots", "2", "--work-dir", &work_dir];
+                let args = [
+                    "cluster",
+                    "executor",
+                    "--scheduler",
+                    &address,
+                    "--slots",
+                    "2",
+                    "--work-dir",
+                    &work_dir,
+                ];
                 // Its task log lines tell the test when the executor has finished a task.
                 let e = start(&args, "ballista_executor=info");
                 assert!(await_line(&e, "executor joining", Duration::from_secs(30)));
@@ -524,7 +614,10 @@ pub mod processes {
 
         // 1. The per-district fit, given on the command line: stdout as in a local run.
         let file = "demo-parquet/pipe_breaks.parquet";
-        let local = client(&[file, "--run", PER_DISTRICT, "--format", "csv"], Duration::from_secs(60));
+        let local = client(
+            &[file, "--run", PER_DISTRICT, "--format", "csv"],
+            Duration::from_secs(60),
+        );
         assert_eq!(local.0, Some(0), "local run: {}", local.2);
         let remote = client(
             &["--cluster", &address, file, "--run", PER_DISTRICT, "--format", "csv"],
@@ -547,7 +640,10 @@ pub mod processes {
                 )
             })
             .collect();
-        assert_eq!(client(&[file, "--run", &copies.join(";")], Duration::from_secs(60)).0, Some(0));
+        assert_eq!(
+            client(&[file, "--run", &copies.join(";")], Duration::from_secs(60)).0,
+            Some(0)
+        );
         let big = big.to_string_lossy().to_string();
         let heavy = "SELECT district, poisson_fit(breaks, km_years, material, (2010 - install_decade) / 10.0, diameter_class, soil_corrosivity) AS fit \
                      FROM big GROUP BY district ORDER BY district";
@@ -614,11 +710,12 @@ pub mod processes {
         let port = free_port();
         let address = format!("127.0.0.1:{port}");
         let scheduler = start(&["cluster", "scheduler", "--bind", &address], "warn");
-        assert!(await_line(&scheduler, "scheduler listening on", Duration::from_secs(30)));
-        let got = client(
-            &["--cluster", &address, "--run", "SELECT 1"],
-            Duration::from_secs(90),
-        );
+        assert!(await_line(
+            &scheduler,
+            "scheduler listening on",
+            Duration::from_secs(30)
+        ));
+        let got = client(&["--cluster", &address, "--run", "SELECT 1"], Duration::from_secs(90));
         assert_eq!(got.0, Some(1), "stderr: {}", got.2);
         assert!(got.2.contains("waiting for an executor"), "{}", got.2);
         assert!(got.2.contains("does it have executors?"), "{}", got.2);

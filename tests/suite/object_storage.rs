@@ -182,31 +182,61 @@ fn a_cluster_reads_and_writes_s3_with_each_process_s_own_environment() {
     ];
     let address = format!("127.0.0.1:{}", free_port());
     let scheduler = start_with(&["cluster", "scheduler", "--bind", &address], "warn", &env);
-    assert!(await_line(&scheduler, "scheduler listening on", Duration::from_secs(30)));
+    assert!(await_line(
+        &scheduler,
+        "scheduler listening on",
+        Duration::from_secs(30)
+    ));
     let _executors: Vec<_> = (0..2)
         .map(|_| {
-            let e = start_with(&["cluster", "executor", "--scheduler", &address, "--slots", "1"], "warn", &env);
+            let e = start_with(
+                &["cluster", "executor", "--scheduler", &address, "--slots", "1"],
+                "warn",
+                &env,
+            );
             assert!(await_line(&e, "executor joining", Duration::from_secs(30)));
             e
         })
         .collect();
     let limit = Duration::from_secs(90);
-    let local = client_with(&["demo-parquet/pipe_breaks.parquet", "--run", FIT, "--format", "csv"], limit, &[]);
+    let local = client_with(
+        &["demo-parquet/pipe_breaks.parquet", "--run", FIT, "--format", "csv"],
+        limit,
+        &[],
+    );
     let url = "s3://extracts/network/pipe_breaks.parquet";
-    let remote = client_with(&["--cluster", &address, url, "--run", FIT, "--format", "csv"], limit, &env);
+    let remote = client_with(
+        &["--cluster", &address, url, "--run", FIT, "--format", "csv"],
+        limit,
+        &env,
+    );
     assert_eq!(remote.0, Some(0), "{}", remote.2);
-    assert_eq!(remote.1, local.1, "the cluster's fit from object storage equals the local one");
+    assert_eq!(
+        remote.1, local.1,
+        "the cluster's fit from object storage equals the local one"
+    );
 
     // COPY on the cluster writes the object (an executor does); reading it back gives the rows.
     let copy = format!("COPY ({FIT}) TO 's3://extracts/out/fits.parquet' STORED AS PARQUET");
     let wrote = client_with(&["--cluster", &address, url, "--run", &copy], limit, &env);
     assert_eq!(wrote.0, Some(0), "{}", wrote.2);
     let back = client_with(
-        &["--cluster", &address, "s3://extracts/out/fits.parquet", "--run", "SELECT COUNT(*) AS n FROM fits", "--format", "csv"],
+        &[
+            "--cluster",
+            &address,
+            "s3://extracts/out/fits.parquet",
+            "--run",
+            "SELECT COUNT(*) AS n FROM fits",
+            "--format",
+            "csv",
+        ],
         limit,
         &env,
     );
     assert_eq!(back.0, Some(0), "{}", back.2);
-    assert_eq!(back.1, "n\n10\n", "one fit per district, read back by URL as table 'fits'");
+    assert_eq!(
+        back.1, "n\n10\n",
+        "one fit per district, read back by URL as table 'fits'"
+    );
     let _ = std::fs::remove_dir_all(&root);
 }

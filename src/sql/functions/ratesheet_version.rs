@@ -40,7 +40,10 @@ impl ScalarUDFImpl for RatesheetVersion {
         Ok(DataType::Utf8)
     }
     fn invoke_with_args(&self, args: ScalarFunctionArgs) -> Result<ColumnarValue> {
-        Ok(ColumnarValue::Array(Arc::new(StringArray::from(vec![VERSION; args.number_rows]))))
+        Ok(ColumnarValue::Array(Arc::new(StringArray::from(vec![
+            VERSION;
+            args.number_rows
+        ]))))
     }
     fn documentation(&self) -> Option<&Documentation> {
         Some(&DOC)
