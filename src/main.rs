@@ -5,7 +5,7 @@ use std::process::ExitCode;
 
 use clap::Parser;
 use ratesheet::cli::hints::Hints;
-use ratesheet::cli::output::{Format, Style, render, save_anywhere};
+use ratesheet::cli::output::{Format, Style, render, save_anywhere, write_rendered};
 use ratesheet::cli::progress::collect_with_progress;
 use ratesheet::cli::session::{SessionSettings, new_cluster_session, new_session, open_table};
 use ratesheet::cli::shell::Shell;
@@ -346,9 +346,16 @@ async fn main() -> ExitCode {
         } else {
             run.await
         };
-        match result.and_then(|b| render(&b, &style).map(|out| (b, out))) {
-            Ok((batches, out)) => {
-                print!("{out}");
+        // Straight to stdout, batch by batch (see `write_rendered`).
+        let mut stdout = std::io::BufWriter::with_capacity(1 << 16, std::io::stdout().lock());
+        let written = result.and_then(|b| {
+            write_rendered(&b, &style, &mut stdout)?;
+            std::io::Write::flush(&mut stdout)?;
+            Ok(b)
+        });
+        drop(stdout);
+        match written {
+            Ok(batches) => {
                 last = batches;
             }
             Err(e) => {

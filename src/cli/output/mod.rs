@@ -8,7 +8,7 @@ pub mod flat;
 pub mod render;
 pub mod spreadsheet;
 
-pub use render::{Format, Style, fit_overview, format_number, format_p, render, terminal_width};
+pub use render::{Format, Style, fit_overview, format_number, format_p, render, terminal_width, write_rendered};
 
 /// Writes batches to `path` (format from the extension) through a temporary file renamed into
 /// place; refuses to overwrite an existing file unless `replace` (`how_to_replace` tells the
