@@ -39,7 +39,8 @@ pub struct ClusterClient {
 
 /// The cluster a session runs on, if any.
 pub fn cluster_of(ctx: &SessionContext) -> Option<Arc<ClusterClient>> {
-    ctx.state().config().get_extension::<ClusterClient>()
+    // Read through the lock: `ctx.state()` would clone the whole state on every statement.
+    ctx.state_ref().read().config().get_extension::<ClusterClient>()
 }
 
 /// A client session for the scheduler at `address` (`HOST:PORT`) built from `state` (a local
