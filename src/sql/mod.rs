@@ -8,6 +8,7 @@
 
 pub mod functions;
 pub mod model;
+pub mod single_phase;
 pub mod standardize;
 pub mod unnest_keys;
 
@@ -55,12 +56,23 @@ pub fn register_functions(ctx: &SessionContext) -> Result<()> {
 }
 
 /// As [`register_functions`], for a `SessionState`. Also installs the planning correction of
-/// [`unnest_keys`] (sort and grouping keys kept after `unnest`).
+/// [`unnest_keys`] (sort and grouping keys kept after `unnest`) and, when the session's memory
+/// pool is unbounded, the physical rule of [`single_phase`] (fit aggregates in one phase over
+/// hash-partitioned input).
 pub fn register_functions_on_state(state: &mut SessionState) -> Result<()> {
     let rules = unnest_keys::with_unnest_correction(state.optimizers());
     if rules.len() != state.optimizers().len() {
         *state = SessionStateBuilder::new_from_existing(state.clone())
             .with_optimizer_rules(rules)
+            .build();
+    }
+    let installed = state
+        .physical_optimizers()
+        .iter()
+        .any(|r| r.name() == single_phase::NAME);
+    if !installed && single_phase::suits(state.runtime_env()) {
+        *state = SessionStateBuilder::new_from_existing(state.clone())
+            .with_physical_optimizer_rule(std::sync::Arc::new(single_phase::SinglePhaseFits))
             .build();
     }
     let analyzed = state

@@ -28,6 +28,42 @@ fn context(partitions: usize) -> SessionContext {
     ctx
 }
 
+/// `ctx` with ratesheet's one-phase planning rule taken out, so that fit aggregates run as the
+/// engine plans them by itself: a partial phase whose row state crosses the repartition.
+fn without_single_phase(ctx: &SessionContext) -> SessionContext {
+    use datafusion::execution::session_state::SessionStateBuilder;
+    use datafusion::physical_optimizer::optimizer::PhysicalOptimizer;
+    let state = ctx.state();
+    let rules: Vec<_> = state
+        .physical_optimizers()
+        .iter()
+        .filter(|r| r.name() != ratesheet::sql::single_phase::NAME)
+        .cloned()
+        .collect();
+    assert_eq!(
+        rules.len() + 1,
+        state.physical_optimizers().len(),
+        "the rule is installed once"
+    );
+    let mut builder = SessionStateBuilder::new_from_existing(state);
+    *builder.physical_optimizers() = Some(PhysicalOptimizer::with_rules(rules));
+    SessionContext::new_with_state(builder.build())
+}
+
+/// The modes of the aggregate nodes in `sql`'s physical plan, top down.
+async fn aggregate_modes(ctx: &SessionContext, sql: &str) -> Vec<AggregateMode> {
+    fn walk(p: &Arc<dyn ExecutionPlan>, out: &mut Vec<AggregateMode>) {
+        if let Some(a) = p.downcast_ref::<AggregateExec>() {
+            out.push(*a.mode());
+        }
+        p.children().into_iter().for_each(|c| walk(c, out));
+    }
+    let plan = ctx.sql(sql).await.unwrap().create_physical_plan().await.unwrap();
+    let mut out = Vec::new();
+    walk(&plan, &mut out);
+    out
+}
+
 async fn register_insurance(ctx: &SessionContext) {
     let path = fixture_path("reference/data/insurance.csv");
     ctx.register_csv("insurance_csv", path.to_str().unwrap(), CsvReadOptions::new())
@@ -221,8 +257,13 @@ fn write_parts(dir: &std::path::Path, parts: usize, groups: usize, rows_per_grou
     }
 }
 
+/// The synthetic fit; `age` is read as a whole number, so the fit sums covariate patterns.
 const SYNTH: &str =
     "SELECT region, poisson_fit(breaks, km_years, material, age) AS fit FROM pipes GROUP BY region ORDER BY region";
+
+/// The synthetic fit with `age` as a real number: the fit buffers rows.
+const SYNTH_ROWS: &str = "SELECT region, poisson_fit(breaks, km_years, material, CAST(age AS DOUBLE)) AS fit \
+     FROM pipes GROUP BY region ORDER BY region";
 
 #[tokio::test]
 async fn results_do_not_depend_on_partitions_files_or_repartitioning() {
@@ -230,28 +271,35 @@ async fn results_do_not_depend_on_partitions_files_or_repartitioning() {
     write_parts(&dir, 5, 60, 40);
     let mut runs = Vec::new();
     for partitions in [1, 2, 8] {
-        let ctx = context(partitions);
-        ctx.register_csv("pipes", dir.to_str().unwrap(), CsvReadOptions::new())
-            .await
-            .unwrap();
-        runs.push((
-            format!("{partitions} partitions"),
-            fingerprint(&collect(&ctx, SYNTH).await),
-        ));
-        // An explicit hash repartition on another key before the aggregate.
-        let shuffled = ctx
-            .table("pipes")
-            .await
-            .unwrap()
-            .repartition(Partitioning::Hash(vec![col("material")], 7))
-            .unwrap();
-        ctx.register_table("pipes_shuffled", shuffled.into_view()).unwrap();
-        let repartitioned = collect(&ctx, &SYNTH.replace("FROM pipes", "FROM pipes_shuffled")).await;
-        runs.push((
-            format!("{partitions} partitions, repartitioned"),
-            fingerprint(&repartitioned),
-        ));
+        // With the one-phase rule (rows cross the repartition as input columns) and without it
+        // (rows cross it as fit state): the same numbers, for both buffers.
+        for (route, ctx) in [
+            ("one phase", context(partitions)),
+            ("two phases", without_single_phase(&context(partitions))),
+        ] {
+            ctx.register_csv("pipes", dir.to_str().unwrap(), CsvReadOptions::new())
+                .await
+                .unwrap();
+            for (buffer, sql) in [("patterns", SYNTH), ("rows", SYNTH_ROWS)] {
+                let label = format!("{partitions} partitions, {route}, {buffer}");
+                runs.push((label.clone(), fingerprint(&collect(&ctx, sql).await)));
+                // An explicit hash repartition on another key before the aggregate.
+                let shuffled = ctx
+                    .table("pipes")
+                    .await
+                    .unwrap()
+                    .repartition(Partitioning::Hash(vec![col("material")], 7))
+                    .unwrap();
+                ctx.register_table("pipes_shuffled", shuffled.into_view()).unwrap();
+                let repartitioned = collect(&ctx, &sql.replace("FROM pipes", "FROM pipes_shuffled")).await;
+                ctx.deregister_table("pipes_shuffled").unwrap();
+                runs.push((format!("{label}, repartitioned"), fingerprint(&repartitioned)));
+            }
+        }
     }
+    // The two buffers agree to rounding; within each buffer every route gives the same numbers.
+    assert_same("patterns vs rows", &runs[0].1, &runs[2].1, 1e-9);
+    let (row_runs, mut runs): (Vec<_>, Vec<_>) = runs.into_iter().partition(|(label, _)| label.contains("rows"));
     // Partial aggregation skipped at once: every input row goes through convert_to_state.
     let skipping = SessionConfig::new()
         .with_target_partitions(2)
@@ -269,6 +317,25 @@ async fn results_do_not_depend_on_partitions_files_or_repartitioning() {
         "partial aggregation was not skipped"
     );
     runs.push(("partial aggregation skipped".into(), fingerprint(&batches)));
+    // Rows through `convert_to_state` (only the two-phase plan has a partial phase to skip).
+    let ctx = without_single_phase(&ctx);
+    let plan = ctx.sql(SYNTH_ROWS).await.unwrap().create_physical_plan().await.unwrap();
+    let batches = datafusion::physical_plan::collect(plan.clone(), ctx.task_ctx())
+        .await
+        .unwrap();
+    assert!(
+        metric_sum(plan.as_ref(), "skipped_aggregation_rows") > 0,
+        "partial aggregation of rows was not skipped"
+    );
+    assert_same(
+        "rows, partial aggregation skipped",
+        &row_runs[0].1,
+        &fingerprint(&batches),
+        1e-12,
+    );
+    for (label, run) in &row_runs[1..] {
+        assert_same(label, &row_runs[0].1, run, 1e-12);
+    }
     // The same rows as one file.
     let single = dir.join("single");
     write_parts(&single, 1, 60, 40);
@@ -315,6 +382,23 @@ async fn a_memory_limited_group_by_spills_and_gives_the_same_numbers() {
     let (plan, batches) = run_with_plan(&ctx, dir.to_str().unwrap()).await;
     assert_same("spilled", &want, &fingerprint(&batches), 1e-12);
     assert!(spill_count(plan.as_ref()) > 0, "the memory-limited run did not spill");
+    // Buffered rows spill too. Under a bounded memory pool the fit keeps the engine's two
+    // phases (sql::single_phase is not installed: a partial phase can emit early when memory
+    // runs short, which degrades more gently than spilling one phase's whole row state).
+    let want = fingerprint(&collect(&free, SYNTH_ROWS).await);
+    assert_eq!(
+        aggregate_modes(&ctx, SYNTH_ROWS).await,
+        [AggregateMode::FinalPartitioned, AggregateMode::Partial]
+    );
+    let plan = ctx.sql(SYNTH_ROWS).await.unwrap().create_physical_plan().await.unwrap();
+    let batches = datafusion::physical_plan::collect(plan.clone(), ctx.task_ctx())
+        .await
+        .unwrap();
+    assert_same("rows spilled", &want, &fingerprint(&batches), 1e-12);
+    assert!(
+        spill_count(plan.as_ref()) > 0,
+        "the memory-limited run of rows did not spill"
+    );
     std::fs::remove_dir_all(&dir).ok();
 }
 
@@ -517,6 +601,17 @@ async fn pattern_sums_and_row_buffers_give_the_same_fits() {
         partial_layouts(&probe, &sql("BIGINT")).await,
         BTreeSet::from(["pattern sums"])
     );
+    // A row-buffering fit runs in one phase over hash-partitioned input (sql::single_phase); the
+    // engine's own two-phase plan, without that rule, shows its partial state.
+    assert_eq!(
+        aggregate_modes(&probe, &sql("DOUBLE")).await,
+        [AggregateMode::SinglePartitioned]
+    );
+    assert_eq!(
+        aggregate_modes(&probe, &sql("BIGINT")).await,
+        [AggregateMode::FinalPartitioned, AggregateMode::Partial]
+    );
+    let probe = without_single_phase(&probe);
     assert_eq!(partial_layouts(&probe, &sql("DOUBLE")).await, BTreeSet::from(["rows"]));
     for partitions in [1, 2, 8] {
         let ctx = context(partitions);

@@ -424,21 +424,35 @@ pub fn render_physical(e: &Arc<dyn PhysicalExpr>) -> String {
 
 /// The spec of a call at execution: the resolved literal when present, otherwise built from
 /// the raw options string (built-in defaults) and physical expressions.
-pub fn spec_at_execution(
-    kind: FitKind,
-    exprs: &[Arc<dyn PhysicalExpr>],
-    types: &[DataType],
-) -> Result<(ModelSpec, usize)> {
+/// The text of a call's last argument when it is a text literal (the spec or an options string).
+fn trailing_text(exprs: &[Arc<dyn PhysicalExpr>]) -> Option<String> {
     use datafusion::physical_expr::expressions::Literal;
-    let function = kind.sql_name();
-    let last_text: Option<String> = exprs.last().and_then(|e| {
+    exprs.last().and_then(|e| {
         e.downcast_ref::<Literal>().and_then(|l| match l.value() {
             ScalarValue::Utf8(Some(s)) | ScalarValue::LargeUtf8(Some(s)) | ScalarValue::Utf8View(Some(s)) => {
                 Some(s.clone())
             }
             _ => None,
         })
-    });
+    })
+}
+
+/// The buffer a planned call's resolved spec chose; `None` when the call carries no spec
+/// literal (it was not simplified).
+pub fn planned_buffer(exprs: &[Arc<dyn PhysicalExpr>]) -> Option<BufferKind> {
+    trailing_text(exprs)
+        .as_deref()
+        .and_then(ModelSpec::from_literal)
+        .map(|spec| spec.buffer)
+}
+
+pub fn spec_at_execution(
+    kind: FitKind,
+    exprs: &[Arc<dyn PhysicalExpr>],
+    types: &[DataType],
+) -> Result<(ModelSpec, usize)> {
+    let function = kind.sql_name();
+    let last_text = trailing_text(exprs);
     if let Some(spec) = last_text.as_deref().and_then(ModelSpec::from_literal) {
         return Ok((spec, exprs.len() - 1));
     }
