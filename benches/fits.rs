@@ -434,6 +434,54 @@ async fn on_cluster(
     Ok(())
 }
 
+/// Mean IRLS iterations per group of the 8-parameter fit (the fit struct's `iterations`).
+async fn mean_iterations(ctx: &SessionContext) -> datafusion::error::Result<f64> {
+    let sql = format!("SELECT CAST(AVG(fit.iterations) AS DOUBLE) FROM ({FIT_SQL})");
+    let batches = ctx.sql(&sql).await?.collect().await?;
+    Ok(batches
+        .first()
+        .and_then(|b| {
+            b.column(0)
+                .as_any()
+                .downcast_ref::<datafusion::arrow::array::Float64Array>()
+        })
+        .map_or(f64::NAN, |a| a.value(0)))
+}
+
+/// Multiply-adds per second of one core on L1-resident data (eight independent accumulators,
+/// the shape of the X'WX kernel's inner loop, compiled with the same flags); the best of a few
+/// runs.
+fn fma_rate() -> f64 {
+    let a: Vec<f64> = (0..512).map(|i| 1.0 + i as f64 * 1e-6).collect();
+    let b: Vec<f64> = (0..512).map(|i| 1.0 - i as f64 * 1e-6).collect();
+    let mut best = f64::INFINITY;
+    let rounds = 20_000;
+    for _ in 0..5 {
+        let t0 = Instant::now();
+        let mut acc = [0.0f64; 8];
+        for _ in 0..rounds {
+            for (ca, cb) in std::hint::black_box(&a).chunks_exact(8).zip(b.chunks_exact(8)) {
+                for l in 0..8 {
+                    acc[l] += ca[l] * cb[l];
+                }
+            }
+        }
+        std::hint::black_box(acc);
+        best = best.min(t0.elapsed().as_secs_f64());
+    }
+    (rounds * a.len()) as f64 / best
+}
+
+/// A plain DataFusion session with only `ratesheet::register_functions` (what a library user
+/// builds), with `t` registered.
+async fn library_session(path: &Path) -> datafusion::error::Result<SessionContext> {
+    let ctx = SessionContext::new();
+    ratesheet::register_functions(&ctx)?;
+    ctx.register_parquet("t", path.to_string_lossy().as_ref(), ParquetReadOptions::default())
+        .await?;
+    Ok(ctx)
+}
+
 fn table_stem(file: &Path) -> String {
     ratesheet::cli::session::table_name_for(&file.to_string_lossy())
 }
@@ -552,17 +600,50 @@ async fn main() -> datafusion::error::Result<()> {
         );
         let ratio = secs(&fit) / secs(&floor);
         let cratio = secs(&collapsed) / secs(&floor);
-        match case.name {
-            "L" => println!(
-                "  target: 8-parameter fit <= 3x floor: {ratio:.2}x, {}",
-                verdict(ratio <= 3.0)
-            ),
-            "groups100k" => println!(
-                "  target: 100,000 groups under 2 s: {:.2} s, {}",
+        let iterations = mean_iterations(&ctx).await?;
+        println!("  IRLS iterations per group (8 parameters): {iterations:.2} on average");
+        if case.name == "L" {
+            println!(
+                "  target: 8-parameter fit <= 8x floor: {ratio:.2}x, {}",
+                verdict(ratio <= 8.0)
+            );
+            let library = library_session(&path).await?;
+            let lib_floor = measure(&library, FLOOR_SQL, repeats).await?;
+            let lib_fit = measure(&library, FIT_SQL, repeats).await?;
+            let r = secs(&lib_fit) / secs(&lib_floor);
+            println!(
+                "  target: the same through a plain DataFusion session after register_functions <= 8x floor: {:.3} s / {:.3} s = {r:.2}x, {}",
+                secs(&lib_fit),
+                secs(&lib_floor),
+                verdict(r <= 8.0)
+            );
+            println!(
+                "  target: factors-only fit <= 2x floor: {cratio:.2}x, {}",
+                verdict(cratio <= 2.0)
+            );
+            // The arithmetic the fits cannot avoid: per IRLS pass, the upper triangle of X'WX
+            // (p(p+1)/2 multiply-adds per row) and X'Wz (p), p = 8; at the machine's measured
+            // multiply-add rate on both cores, plus the floor's scan of the columns.
+            let p = 8.0;
+            let madds = iterations * case.rows as f64 * (p * (p + 1.0) / 2.0 + p);
+            let cores = std::thread::available_parallelism().map_or(1, |n| n.get()) as f64;
+            let rate = fma_rate();
+            let limit = madds / (rate * cores) + secs(&floor);
+            println!(
+                "  physical limit: {:.2e} multiply-adds in {iterations:.2} passes at {:.2e}/s per core x {cores} cores = {:.3} s, plus the floor's scan {:.3} s = {limit:.3} s (fit = {:.1}x this limit)",
+                madds,
+                rate,
+                madds / (rate * cores),
+                secs(&floor),
+                secs(&fit) / limit
+            );
+        }
+        if case.name == "groups100k" {
+            println!(
+                "  target: 100,000 groups <= 0.8 s: {:.2} s, {}",
                 secs(&fit),
-                verdict(secs(&fit) < 2.0)
-            ),
-            _ => {}
+                verdict(secs(&fit) <= 0.8)
+            );
         }
         if let Some((p, per_term)) = &profile {
             let r = secs(p) / secs(&fit);
@@ -580,10 +661,6 @@ async fn main() -> datafusion::error::Result<()> {
         }
         if case.name == "L" || case.name == "M" {
             println!(
-                "  target: factors-only fit <= 1.3x floor: {cratio:.2}x, {}",
-                verdict(cratio <= 1.3)
-            );
-            println!(
                 "  target: both cores busy while fitting: {:.2} cores, {}",
                 fit.cpu_per_wall,
                 verdict(fit.cpu_per_wall >= 1.6)
@@ -592,9 +669,14 @@ async fn main() -> datafusion::error::Result<()> {
         if case.name == "L" {
             if let Some((wall, rss, user, system)) = whole_process(&path) {
                 println!(
-                    "  whole process (release binary, fit to CSV): {:.2} s (user {user:.2} s, system {system:.2} s), peak RSS {}; peak RSS / model bytes = {:.2}, target <= 2: {}",
+                    "  target: whole process (release binary, fit to CSV) <= 1.45 s: {:.2} s (user {user:.2} s, system {system:.2} s), {}",
                     wall.as_secs_f64(),
+                    verdict(wall.as_secs_f64() <= 1.45)
+                );
+                println!(
+                    "  target: whole-process peak RSS <= 2x the model columns: {} / {} = {:.2}x, {}",
                     mib(rss),
+                    mib(model_bytes),
                     rss as f64 / model_bytes as f64,
                     verdict(rss as f64 <= 2.0 * model_bytes as f64)
                 );
@@ -608,8 +690,8 @@ async fn main() -> datafusion::error::Result<()> {
     if let (Some(m), Some(s)) = (times.get("M"), times.get("skewed")) {
         let r = s["fit_s"].as_f64().unwrap_or(f64::NAN) / m["fit_s"].as_f64().unwrap_or(f64::NAN);
         println!(
-            "\ntarget: skewed fit <= 1.5x balanced fit: {r:.2}x, {}",
-            verdict(r <= 1.5)
+            "\ntarget: skewed fit <= 1.3x balanced fit: {r:.2}x, {}",
+            verdict(r <= 1.3)
         );
     }
     if opts.keep.is_some() {

@@ -97,6 +97,12 @@ pub trait Family: Sync {
     fn collapsible(&self) -> bool {
         false
     }
+    /// Whether a large fit should start from a fit on a subsample of its rows
+    /// (`irls::warm_start`): false when IRLS is a single solve (identity link, constant
+    /// variance) or the family brings its own start (the negative binomial's warm means).
+    fn subsample_start(&self) -> bool {
+        true
+    }
     /// The family's own statistics of a fit with means `mu` (Poisson: the overdispersion test);
     /// `rows` is the number of rows the fit stands for.
     fn extra_tests(&self, y: &[f64], mu: &[f64], weights: Option<&[f64]>, rows: usize) -> FamilyTests {
@@ -251,6 +257,9 @@ pub struct Gaussian;
 impl Family for Gaussian {
     fn kind(&self) -> FamilyKind {
         FamilyKind::Gaussian
+    }
+    fn subsample_start(&self) -> bool {
+        false
     }
     fn scale(&self) -> Scale {
         Scale::Estimated

@@ -15,7 +15,7 @@ use nalgebra::DMatrix;
 use super::design::Design;
 use super::error::FitError;
 use super::family::{Family, FamilyKind, FamilyTests, Scale};
-use super::irls::{FitOptions, IrlsRun, Standardised, aliased_columns, irls};
+use super::irls::{FitOptions, IrlsRun, Standardised, aliased_columns, irls, warm_start};
 use super::solve::NormalEquations;
 
 /// The response side of a model: one value per design row.
@@ -301,7 +301,8 @@ pub(crate) fn fit_with_row_count<F: Family>(
         });
     }
 
-    let Some(run) = irls(family, &standard.x, n, &active, y, offset, w, opts, None) else {
+    let start = warm_start(family, &standard.x, n, &active, y, offset, w, opts);
+    let Some(run) = irls(family, &standard.x, n, &active, y, offset, w, opts, start.as_deref()) else {
         issues.push(FitIssue::NumericalBreakdown);
         return Ok(unfitted(family, design, stats, issues));
     };

@@ -229,6 +229,69 @@ pub(crate) fn irls<F: Family>(
     })
 }
 
+/// Fits with fewer rows start from the family's starting means: a subsample fit would not pay.
+pub const WARM_START_ROWS: usize = 4096;
+/// About this many rows make up the subsample of a warm start.
+const SUBSAMPLE_ROWS: usize = 1024;
+
+/// Starting means for a large fit, from the same group's rows only (never from other groups,
+/// which would tie a group's last digits to its neighbours): IRLS on every s-th row
+/// (s = n / [`SUBSAMPLE_ROWS`]) to a loose tolerance, then mu = g⁻¹(offset + X b). From there the
+/// full IRLS needs about three passes over all rows instead of five or six (Newton's quadratic
+/// convergence from a start already close). `None` (the family's start is used) for small
+/// groups, families that need no such start (`Family::subsample_start`), and whenever the
+/// subsample fit fails (a level absent from the subsample makes it singular, for instance).
+#[allow(clippy::too_many_arguments)]
+pub(crate) fn warm_start<F: Family>(
+    family: &F,
+    x: &[f64],
+    n: usize,
+    active: &[usize],
+    y: &[f64],
+    offset: &[f64],
+    w: &[f64],
+    opts: FitOptions,
+) -> Option<Vec<f64>> {
+    if n < WARM_START_ROWS || active.is_empty() || !family.subsample_start() {
+        return None;
+    }
+    let step = n / SUBSAMPLE_ROWS;
+    let rows: Vec<usize> = (0..n).step_by(step).collect();
+    let m = rows.len();
+    let pick = |v: &[f64]| -> Vec<f64> { rows.iter().map(|&i| v[i]).collect() };
+    let mut sub_x = Vec::with_capacity(m * active.len());
+    for &j in active {
+        sub_x.extend(rows.iter().map(|&i| x[j * n + i]));
+    }
+    let sub_active: Vec<usize> = (0..active.len()).collect();
+    let loose = FitOptions {
+        max_iter: opts.max_iter.min(25),
+        tol: opts.tol.max(1e-8),
+    };
+    let run = irls(
+        family,
+        &sub_x,
+        m,
+        &sub_active,
+        &pick(y),
+        &pick(offset),
+        &pick(w),
+        loose,
+        None,
+    )?;
+    if !run.converged || run.stalled || run.beta.iter().any(|b| !b.is_finite()) {
+        return None;
+    }
+    let mut eta = vec![0.0; n];
+    linear_predictor(x, n, active, &run.beta, offset, &mut eta);
+    let mu: Vec<f64> = eta.iter().map(|&e| family.inverse_link(e)).collect();
+    let usable = mu
+        .iter()
+        .zip(y)
+        .all(|(&m, &y)| m.is_finite() && family.variance(m) > 0.0 && !(family.has_boundary() && m == 0.0 && y > 0.0));
+    usable.then_some(mu)
+}
+
 /// eta = offset + X[:, active]·b.
 fn linear_predictor(x: &[f64], n: usize, active: &[usize], b: &[f64], offset: &[f64], eta: &mut [f64]) {
     eta.copy_from_slice(offset);
@@ -238,5 +301,54 @@ fn linear_predictor(x: &[f64], n: usize, active: &[usize], b: &[f64], offset: &[
         for (e, &v) in eta.iter_mut().zip(col) {
             *e += coef * v;
         }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::glm::Poisson;
+
+    /// A deterministic Poisson-like design: intercept and three standardised-ish columns, counts
+    /// from a fixed rate pattern (no randomness needed: only the two routes are compared).
+    fn data(n: usize) -> (Vec<f64>, Vec<f64>, Vec<f64>, Vec<f64>) {
+        let mut x = vec![1.0; n];
+        for j in 1..4 {
+            x.extend((0..n).map(|i| (((i * (7 + 4 * j)) % 97) as f64 / 48.5) - 1.0));
+        }
+        let offset: Vec<f64> = (0..n).map(|i| ((i % 13) as f64 / 13.0).ln_1p()).collect();
+        let y: Vec<f64> = (0..n)
+            .map(|i| {
+                let eta = 0.3 + 0.5 * x[n + i] - 0.2 * x[2 * n + i] + 0.1 * x[3 * n + i] + offset[i];
+                (eta.exp() + ((i * 31) % 5) as f64 - 2.0).max(0.0).round()
+            })
+            .collect();
+        (x, y, offset, vec![1.0; n])
+    }
+
+    /// The warm-started IRLS reaches the cold start's estimates (to 1e-10) in fewer passes over
+    /// all rows; below the row threshold no warm start is made.
+    #[test]
+    fn a_warm_start_reaches_the_same_estimates_in_fewer_passes() {
+        let n = 20_000;
+        let (x, y, offset, w) = data(n);
+        let active = [0, 1, 2, 3];
+        let opts = FitOptions::default();
+        let cold = irls(&Poisson, &x, n, &active, &y, &offset, &w, opts, None).unwrap();
+        let start = warm_start(&Poisson, &x, n, &active, &y, &offset, &w, opts).expect("a warm start");
+        let warm = irls(&Poisson, &x, n, &active, &y, &offset, &w, opts, Some(&start)).unwrap();
+        assert!(cold.converged && warm.converged);
+        for (a, b) in cold.beta.iter().zip(&warm.beta) {
+            assert!((a - b).abs() <= 1e-10 * (1.0 + a.abs()), "{a} vs {b}");
+        }
+        assert!(
+            warm.iterations < cold.iterations,
+            "{} vs {}",
+            warm.iterations,
+            cold.iterations
+        );
+        let small = WARM_START_ROWS - 1;
+        let (x, y, offset, w) = data(small);
+        assert!(warm_start(&Poisson, &x, small, &active, &y, &offset, &w, opts).is_none());
     }
 }

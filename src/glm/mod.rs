@@ -39,6 +39,6 @@ pub use fit::{
     pearson_residuals,
 };
 pub use inference::{ModelTest, SeType, TermRow, model_test, term_table};
-pub use irls::FitOptions;
+pub use irls::{FitOptions, WARM_START_ROWS};
 pub use negbin::{NegativeBinomial, fit_negative_binomial};
 pub use overdispersion::ScoreTest;

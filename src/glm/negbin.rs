@@ -41,6 +41,10 @@ impl Family for NegativeBinomial<'_> {
     fn kind(&self) -> FamilyKind {
         FamilyKind::NegativeBinomial
     }
+    /// The alternation's rounds start from the previous round's means, which are closer.
+    fn subsample_start(&self) -> bool {
+        self.warm.is_none()
+    }
     fn scale(&self) -> Scale {
         Scale::OwnParameter
     }

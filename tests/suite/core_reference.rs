@@ -301,6 +301,9 @@ fn hair_eye_log_linear_models_match_statsmodels() {
 
 #[test]
 fn doctor_visits_match_statsmodels() {
+    // Large enough that the fit starts from a subsample fit (glm::irls::warm_start): this
+    // reference check covers the warm-started route.
+    assert!(Table::load("reference/data/doctorvisits.csv").num("visits").len() >= ratesheet::glm::WARM_START_ROWS);
     assert_eq!(check_dataset("doctorvisits"), 1);
 }
 

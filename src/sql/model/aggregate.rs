@@ -193,7 +193,7 @@ impl<B: GroupBuffer> GroupsAccumulator for FitGroups<B> {
     }
 
     fn evaluate(&mut self, emit_to: EmitTo) -> Result<ArrayRef> {
-        Ok(Arc::new(evaluate_groups(&self.buffer.take(emit_to))?))
+        Ok(Arc::new(evaluate_groups(&mut self.buffer.take(emit_to))?))
     }
 
     fn state(&mut self, emit_to: EmitTo) -> Result<Vec<ArrayRef>> {
@@ -227,7 +227,7 @@ impl<B: GroupBuffer> Accumulator for SingleGroup<B> {
     /// window frames grow).
     fn evaluate(&mut self) -> Result<ScalarValue> {
         self.0.buffer.common_mut().counts.ensure(1);
-        let array = evaluate_groups(&self.0.buffer)?;
+        let array = evaluate_groups(&mut self.0.buffer)?;
         ScalarValue::try_from_array(&array, 0)
     }
 

@@ -24,7 +24,9 @@ use crate::glm::{
 use crate::glm::{Family, SeType, TermRow, TermState};
 
 /// Fits every group of `buffer` and returns one struct per group.
-pub fn evaluate_groups<B: GroupBuffer>(buffer: &B) -> Result<StructArray> {
+pub fn evaluate_groups<B: GroupBuffer>(buffer: &mut B) -> Result<StructArray> {
+    buffer.arrange_by_group();
+    let buffer = &*buffer;
     let mut out = FitColumns::new();
     let (offsets, mut order) = buffer.buckets();
     let keys = buffer.hash_keys();

@@ -105,7 +105,7 @@ pub fn merge_arbitrary_state(data: &[u8]) -> bool {
 fn merge_and_fit<B: GroupBuffer>(mut buffer: B, states: &[ArrayRef], groups: &[usize], total_groups: usize) -> bool {
     match buffer.merge(states, groups, total_groups) {
         Ok(()) => {
-            let _ = evaluate_groups(&buffer);
+            let _ = evaluate_groups(&mut buffer);
             true
         }
         Err(_) => false,

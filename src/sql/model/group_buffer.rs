@@ -78,6 +78,9 @@ pub trait GroupBuffer: std::fmt::Debug + Send + Sync + Sized + 'static {
     fn content(&self) -> StateContent<'_>;
     /// Approximate heap bytes of the data (the common part is added by [`GroupBuffer::size`]).
     fn data_bytes(&self) -> usize;
+    /// Lays the items out group by group if that makes evaluation cheaper (the content is
+    /// unchanged; only where items live).
+    fn arrange_by_group(&mut self) {}
     /// Each group's items (rows or pattern slots): `order[offsets[g]..offsets[g + 1]]`.
     fn buckets(&self) -> (Vec<usize>, Vec<usize>);
     /// Whatever hashing items needs, prepared once per evaluation (hashes of factor labels).

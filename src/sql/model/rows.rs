@@ -41,6 +41,47 @@ impl GroupRows {
         }
         counts
     }
+
+    /// The group offsets and, per row, its position in group order (a group's rows keep their
+    /// order of arrival).
+    fn group_positions(&self) -> (Vec<usize>, Vec<u32>) {
+        let offsets = self.group_offsets();
+        let mut next = offsets.clone();
+        let dest = self
+            .group
+            .iter()
+            .map(|&g| {
+                let d = next[g as usize];
+                next[g as usize] += 1;
+                d as u32
+            })
+            .collect();
+        (offsets, dest)
+    }
+
+    /// Whether the rows are already in group order.
+    fn in_group_order(&self) -> bool {
+        self.group.windows(2).all(|w| w[0] <= w[1])
+    }
+}
+
+/// `v` with element i moved to position `dest[i]`: one sequential read, one write cursor per
+/// group, which is far kinder to the cache than gathering a group's rows from all over `v`.
+fn scatter<T: Copy + Default>(v: &[T], dest: &[u32]) -> Vec<T> {
+    let mut out = vec![T::default(); v.len()];
+    for (&x, &d) in v.iter().zip(dest) {
+        out[d as usize] = x;
+    }
+    out
+}
+
+impl Column {
+    fn scattered(&self, dest: &[u32]) -> Column {
+        match self {
+            Column::Numeric(v) => Column::Numeric(scatter(v, dest)),
+            Column::Factor(codes) => Column::Factor(scatter(codes, dest)),
+        }
+    }
 }
 
 impl GroupBuffer for GroupRows {
@@ -151,28 +192,9 @@ impl GroupBuffer for GroupRows {
         taken
     }
 
-    /// Rows in group order: each column is scattered in one sequential pass (one write cursor
-    /// per group), which is far kinder to the cache than gathering a group's rows from all over
-    /// the buffer.
+    /// Rows in group order, each column scattered in one sequential pass.
     fn content(&self) -> StateContent<'_> {
-        let counts = self.group_offsets();
-        let mut next = counts.clone();
-        let dest: Vec<u32> = self
-            .group
-            .iter()
-            .map(|&g| {
-                let d = next[g as usize];
-                next[g as usize] += 1;
-                d as u32
-            })
-            .collect();
-        fn scatter<T: Copy + Default>(v: &[T], dest: &[u32]) -> Vec<T> {
-            let mut out = vec![T::default(); v.len()];
-            for (&x, &d) in v.iter().zip(dest) {
-                out[d as usize] = x;
-            }
-            out
-        }
+        let (counts, dest) = self.group_positions();
         let predictors = self
             .columns
             .iter()
@@ -202,6 +224,22 @@ impl GroupBuffer for GroupRows {
             skipped: &self.common.counts.skipped,
             invalid: &self.common.counts.invalid,
         }
+    }
+
+    /// Moves the rows into group order, column by column (at most one column is held twice), so
+    /// that hashing, sorting and gathering a group touch one contiguous stretch of memory
+    /// instead of rows scattered over the whole buffer.
+    fn arrange_by_group(&mut self) {
+        if self.in_group_order() {
+            return;
+        }
+        let (_, dest) = self.group_positions();
+        self.y = scatter(&self.y, &dest);
+        self.exposure = scatter(&self.exposure, &dest);
+        for c in &mut self.columns {
+            *c = c.scattered(&dest);
+        }
+        self.group = scatter(&self.group, &dest);
     }
 
     fn buckets(&self) -> (Vec<usize>, Vec<usize>) {
