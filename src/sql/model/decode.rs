@@ -50,6 +50,7 @@ impl Dictionary {
 }
 
 /// One decoded predictor column of a batch.
+#[derive(Debug, Clone)]
 pub enum BatchColumn {
     Numeric(Float64Array),
     /// Dictionary codes, [`NULL_CODE`] for NULL.

@@ -81,6 +81,8 @@ pub trait GroupBuffer: std::fmt::Debug + Send + Sync + Sized + 'static {
     /// Lays the items out group by group if that makes evaluation cheaper (the content is
     /// unchanged; only where items live).
     fn arrange_by_group(&mut self) {}
+    /// Brings every item into the form [`GroupBuffer::content`] reads (the content is unchanged).
+    fn settle(&mut self) {}
     /// Each group's items (rows or pattern slots): `order[offsets[g]..offsets[g + 1]]`.
     fn buckets(&self) -> (Vec<usize>, Vec<usize>);
     /// Whatever hashing items needs, prepared once per evaluation (hashes of factor labels).
@@ -179,7 +181,8 @@ pub trait GroupBuffer: std::fmt::Debug + Send + Sync + Sized + 'static {
         taken
     }
 
-    fn to_state(&self) -> Result<Vec<ArrayRef>> {
+    fn to_state(&mut self) -> Result<Vec<ArrayRef>> {
+        self.settle();
         encode(self.common().spec.kind, self.content())
     }
 

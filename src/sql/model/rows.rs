@@ -8,7 +8,7 @@
 use std::cmp::Ordering;
 use std::sync::Arc;
 
-use datafusion::arrow::array::{ArrayRef, Float64Array, StringArray};
+use datafusion::arrow::array::{Array, ArrayRef, Float64Array, StringArray};
 use datafusion::error::Result;
 
 use super::decode::{BatchColumn, BatchInputs};
@@ -16,7 +16,8 @@ use super::group_buffer::{Column, Common, GroupBuffer, GroupData, Response, labe
 use super::spec::ModelSpec;
 use super::state::{DecodedState, Layout, StateContent};
 
-/// The buffered rows of all groups.
+/// The buffered rows of all groups: flat columns, plus the clean input batches that arrived
+/// since the rows were last laid out ([`Batch`]).
 #[derive(Debug, Clone)]
 pub struct GroupRows {
     common: Common,
@@ -25,6 +26,48 @@ pub struct GroupRows {
     /// Exposure per row (1 for fits without one).
     exposure: Vec<f64>,
     columns: Vec<Column>,
+    batches: Vec<Batch>,
+}
+
+/// The rows of one clean input batch as the engine decoded them: the number columns are the
+/// batch's own Arrow arrays (shared, not copied), so a row is copied once, when the rows are
+/// laid out in group order ([`GroupBuffer::arrange_by_group`]), instead of also into growing
+/// flat columns (whose reallocations touched about twice the final bytes in fresh pages).
+#[derive(Debug, Clone)]
+struct Batch {
+    group: Vec<u32>,
+    y: Float64Array,
+    exposure: Option<Float64Array>,
+    columns: Vec<BatchColumn>,
+}
+
+/// `a` itself when its buffers hold little more than its values; otherwise a copy of just its
+/// values, so that a slice of a large buffer (a merged state's list values, say) does not keep
+/// the whole buffer alive, and the memory reported is the memory held.
+fn compact(a: &Float64Array) -> Float64Array {
+    let needed = a.len() * std::mem::size_of::<f64>();
+    if a.get_buffer_memory_size() <= needed + needed / 4 + 256 {
+        a.clone()
+    } else {
+        Float64Array::from(a.values().to_vec())
+    }
+}
+
+impl Batch {
+    fn bytes(&self) -> usize {
+        let cols: usize = self
+            .columns
+            .iter()
+            .map(|c| match c {
+                BatchColumn::Numeric(a) => a.get_buffer_memory_size(),
+                BatchColumn::Codes(codes) => codes.capacity() * 4,
+            })
+            .sum();
+        self.group.capacity() * 4
+            + self.y.get_buffer_memory_size()
+            + self.exposure.as_ref().map_or(0, |e| e.get_buffer_memory_size())
+            + cols
+    }
 }
 
 impl GroupRows {
@@ -33,7 +76,7 @@ impl GroupRows {
     fn group_offsets(&self) -> Vec<usize> {
         let groups = self.num_groups();
         let mut counts = vec![0usize; groups + 1];
-        for &g in &self.group {
+        for &g in self.all_groups() {
             counts[g as usize + 1] += 1;
         }
         for g in 0..groups {
@@ -48,8 +91,7 @@ impl GroupRows {
         let offsets = self.group_offsets();
         let mut next = offsets.clone();
         let dest = self
-            .group
-            .iter()
+            .all_groups()
             .map(|&g| {
                 let d = next[g as usize];
                 next[g as usize] += 1;
@@ -61,7 +103,86 @@ impl GroupRows {
 
     /// Whether the rows are already in group order.
     fn in_group_order(&self) -> bool {
-        self.group.windows(2).all(|w| w[0] <= w[1])
+        self.batches.is_empty() && self.group.windows(2).all(|w| w[0] <= w[1])
+    }
+
+    /// Every row in the flat columns, in the order of arrival.
+    fn settle(&mut self) {
+        if !self.batches.is_empty() {
+            let dest: Vec<u32> = (0..self.all_groups().count() as u32).collect();
+            self.lay_out(&dest);
+        }
+    }
+
+    /// Every row's group: the flat rows, then the batches' rows in order of arrival.
+    fn all_groups(&self) -> impl Iterator<Item = &u32> + '_ {
+        self.group
+            .iter()
+            .chain(self.batches.iter().flat_map(|b| b.group.iter()))
+    }
+
+    /// Rewrites the flat columns with row i (flat rows, then the batches' rows) at `dest[i]`,
+    /// one column at a time (at most one column is held twice), and drops the batches.
+    fn lay_out(&mut self, dest: &[u32]) {
+        let total = dest.len();
+        fn place<T: Copy + Default>(out: &mut Vec<T>, parts: impl Iterator<Item = T>, dest: &[u32]) {
+            for (x, &d) in parts.zip(dest) {
+                out[d as usize] = x;
+            }
+        }
+        let batches = std::mem::take(&mut self.batches);
+        let mut y = vec![0.0; total];
+        place(
+            &mut y,
+            self.y
+                .iter()
+                .copied()
+                .chain(batches.iter().flat_map(|b| b.y.values().iter().copied())),
+            dest,
+        );
+        self.y = y;
+        let mut exposure = vec![0.0; total];
+        place(
+            &mut exposure,
+            self.exposure.iter().copied().chain(batches.iter().flat_map(|b| {
+                let n = b.y.len();
+                (0..n).map(move |i| b.exposure.as_ref().map_or(1.0, |e| e.value(i)))
+            })),
+            dest,
+        );
+        self.exposure = exposure;
+        for (k, column) in self.columns.iter_mut().enumerate() {
+            *column = match column {
+                Column::Numeric(v) => {
+                    let mut out = vec![0.0; total];
+                    let tail = batches.iter().flat_map(|b| match &b.columns[k] {
+                        BatchColumn::Numeric(a) => a.values().iter().copied(),
+                        BatchColumn::Codes(_) => unreachable!("column kinds follow the spec"),
+                    });
+                    place(&mut out, v.iter().copied().chain(tail), dest);
+                    Column::Numeric(out)
+                }
+                Column::Factor(codes) => {
+                    let mut out = vec![0u32; total];
+                    let tail = batches.iter().flat_map(|b| match &b.columns[k] {
+                        BatchColumn::Codes(c) => c.iter().copied(),
+                        BatchColumn::Numeric(_) => unreachable!("column kinds follow the spec"),
+                    });
+                    place(&mut out, codes.iter().copied().chain(tail), dest);
+                    Column::Factor(out)
+                }
+            };
+        }
+        let mut group = vec![0u32; total];
+        place(
+            &mut group,
+            self.group
+                .iter()
+                .copied()
+                .chain(batches.iter().flat_map(|b| b.group.iter().copied())),
+            dest,
+        );
+        self.group = group;
     }
 }
 
@@ -73,15 +194,6 @@ fn scatter<T: Copy + Default>(v: &[T], dest: &[u32]) -> Vec<T> {
         out[d as usize] = x;
     }
     out
-}
-
-impl Column {
-    fn scattered(&self, dest: &[u32]) -> Column {
-        match self {
-            Column::Numeric(v) => Column::Numeric(scatter(v, dest)),
-            Column::Factor(codes) => Column::Factor(scatter(codes, dest)),
-        }
-    }
 }
 
 impl GroupBuffer for GroupRows {
@@ -105,6 +217,7 @@ impl GroupBuffer for GroupRows {
             y: Vec::new(),
             exposure: Vec::new(),
             columns,
+            batches: Vec::new(),
         }
     }
 
@@ -125,23 +238,32 @@ impl GroupBuffer for GroupRows {
                 Column::Factor(codes) => codes.capacity() * 4,
             })
             .sum();
-        self.group.capacity() * 4 + (self.y.capacity() + self.exposure.capacity()) * 8 + cols
+        self.group.capacity() * 4
+            + (self.y.capacity() + self.exposure.capacity()) * 8
+            + cols
+            // Batches count twice: laying them out (for evaluation or for the state) builds
+            // the flat copy while they are still held.
+            + 2 * self.batches.iter().map(Batch::bytes).sum::<usize>()
     }
 
+    /// A clean batch is kept as it is (see [`Batch`]).
     fn push_all(&mut self, inputs: &BatchInputs, group_indices: &[usize]) {
-        self.group.extend(group_indices.iter().map(|&g| g as u32));
-        self.y.extend_from_slice(inputs.y.values());
-        match &inputs.exposure {
-            Some(e) => self.exposure.extend_from_slice(e.values()),
-            None => self.exposure.resize(self.exposure.len() + inputs.len(), 1.0),
+        if group_indices.is_empty() {
+            return;
         }
-        for (c, p) in self.columns.iter_mut().zip(&inputs.predictors) {
-            match (c, p) {
-                (Column::Numeric(v), BatchColumn::Numeric(a)) => v.extend_from_slice(a.values()),
-                (Column::Factor(codes), BatchColumn::Codes(c)) => codes.extend_from_slice(c),
-                _ => unreachable!("column kinds follow the spec"),
-            }
-        }
+        self.batches.push(Batch {
+            group: group_indices.iter().map(|&g| g as u32).collect(),
+            y: compact(&inputs.y),
+            exposure: inputs.exposure.as_ref().map(compact),
+            columns: inputs
+                .predictors
+                .iter()
+                .map(|c| match c {
+                    BatchColumn::Numeric(a) => BatchColumn::Numeric(compact(a)),
+                    BatchColumn::Codes(codes) => BatchColumn::Codes(codes.clone()),
+                })
+                .collect(),
+        });
     }
 
     fn push_row(&mut self, inputs: &BatchInputs, row: usize, g: usize) {
@@ -167,6 +289,7 @@ impl GroupBuffer for GroupRows {
     }
 
     fn split_front(&mut self, n: usize) -> Self {
+        self.settle();
         let spec = self.common.spec.clone();
         let mut taken = GroupRows::empty(spec.clone());
         let mut kept = GroupRows::empty(spec);
@@ -234,12 +357,11 @@ impl GroupBuffer for GroupRows {
             return;
         }
         let (_, dest) = self.group_positions();
-        self.y = scatter(&self.y, &dest);
-        self.exposure = scatter(&self.exposure, &dest);
-        for c in &mut self.columns {
-            *c = c.scattered(&dest);
-        }
-        self.group = scatter(&self.group, &dest);
+        self.lay_out(&dest);
+    }
+
+    fn settle(&mut self) {
+        GroupRows::settle(self);
     }
 
     fn buckets(&self) -> (Vec<usize>, Vec<usize>) {
