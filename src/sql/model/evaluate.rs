@@ -37,6 +37,9 @@ pub fn evaluate_groups<B: GroupBuffer>(buffer: &mut B) -> Result<StructArray> {
         let items = &mut order[offsets[g]..offsets[g + 1]];
         buffer.sort_canonically(items, &keys);
         fit_group(&buffer.group_data(g, items), &mut out)?;
+        if g == 0 {
+            out.reserve_like_pushed(buffer.num_groups() - 1);
+        }
         FIT_PROGRESS.groups_fitted.fetch_add(1, Ordering::Relaxed);
     }
     Ok(out.finish())

@@ -396,6 +396,18 @@ impl<T: RecordTable> RecordColumns<T> {
         }
     }
 
+    fn reserve(&mut self, more: usize) {
+        for column in &mut self.cells {
+            match column {
+                CellColumn::Text(c) => c.reserve(more),
+                CellColumn::UInt(c) => c.reserve(more),
+                CellColumn::UInt32(c) => c.reserve(more),
+                CellColumn::Float(c) => c.reserve(more),
+                CellColumn::Bool(c) => c.reserve(more),
+            }
+        }
+    }
+
     fn push(&mut self, record: &T::Record<'_>) {
         for (field, column) in T::all().iter().zip(&mut self.cells) {
             match (field.cell(record), column) {
@@ -442,6 +454,13 @@ impl<T: RecordTable> RecordLists<T> {
             records: RecordColumns::new(),
             offsets: vec![0],
         }
+    }
+
+    /// Room for `more` lists as long, on average, as those pushed so far.
+    fn reserve_like_pushed(&mut self, more: usize) {
+        let lists = (self.offsets.len() - 1).max(1);
+        self.records.reserve(self.records.rows.div_ceil(lists) * more);
+        self.offsets.reserve(more);
     }
 
     fn push_row<'r>(&mut self, records: impl IntoIterator<Item = &'r T::Record<'r>>)
@@ -499,6 +518,19 @@ impl FitColumns {
             covariance: Vec::new(),
             covariance_offsets: vec![0],
         }
+    }
+
+    /// Reserves room for `more` groups shaped, on average, like those pushed so far: one
+    /// allocation per column instead of repeated doubling, each of which copies the column
+    /// into fresh memory.
+    pub fn reserve_like_pushed(&mut self, more: usize) {
+        let groups = (self.covariance_offsets.len() - 1).max(1);
+        self.fits.reserve(more);
+        self.terms.reserve_like_pushed(more);
+        self.predictors.reserve_like_pushed(more);
+        self.design.reserve_like_pushed(more);
+        self.covariance.reserve(self.covariance.len().div_ceil(groups) * more);
+        self.covariance_offsets.reserve(more);
     }
 
     /// Adds one group. `covariance` (terms x terms) is written only where both terms are
