@@ -14,7 +14,8 @@
 use std::sync::{Arc, LazyLock};
 
 use datafusion::arrow::array::{
-    Array, ArrayRef, AsArray, BooleanArray, Float64Array, ListArray, StringArray, StructArray, UInt32Array, UInt64Array,
+    Array, ArrayRef, AsArray, BooleanArray, Float64Array, ListArray, StringBuilder, StructArray, UInt32Array,
+    UInt64Array,
 };
 use datafusion::arrow::buffer::OffsetBuffer;
 use datafusion::arrow::datatypes::{DataType, Field, Fields, Float64Type, UInt32Type, UInt64Type};
@@ -370,7 +371,9 @@ struct RecordColumns<T: RecordTable> {
 }
 
 enum CellColumn {
-    Text(Vec<Option<String>>),
+    /// Text cells go straight into Arrow's string layout (bytes and offsets), not one heap
+    /// string per cell kept until the end.
+    Text(StringBuilder),
     UInt(Vec<Option<u64>>),
     UInt32(Vec<Option<u32>>),
     Float(Vec<Option<f64>>),
@@ -382,7 +385,7 @@ impl<T: RecordTable> RecordColumns<T> {
         let cells = T::all()
             .iter()
             .map(|f| match f.cell_type() {
-                CellType::Text => CellColumn::Text(Vec::new()),
+                CellType::Text => CellColumn::Text(StringBuilder::new()),
                 CellType::UInt => CellColumn::UInt(Vec::new()),
                 CellType::UInt32 => CellColumn::UInt32(Vec::new()),
                 CellType::Float => CellColumn::Float(Vec::new()),
@@ -399,7 +402,7 @@ impl<T: RecordTable> RecordColumns<T> {
     fn reserve(&mut self, more: usize) {
         for column in &mut self.cells {
             match column {
-                CellColumn::Text(c) => c.reserve(more),
+                CellColumn::Text(_) => {}
                 CellColumn::UInt(c) => c.reserve(more),
                 CellColumn::UInt32(c) => c.reserve(more),
                 CellColumn::Float(c) => c.reserve(more),
@@ -411,7 +414,7 @@ impl<T: RecordTable> RecordColumns<T> {
     fn push(&mut self, record: &T::Record<'_>) {
         for (field, column) in T::all().iter().zip(&mut self.cells) {
             match (field.cell(record), column) {
-                (Cell::Text(v), CellColumn::Text(c)) => c.push(v),
+                (Cell::Text(v), CellColumn::Text(c)) => c.append_option(v),
                 (Cell::UInt(v), CellColumn::UInt(c)) => c.push(v),
                 (Cell::UInt32(v), CellColumn::UInt32(c)) => c.push(v),
                 (Cell::Float(v), CellColumn::Float(c)) => c.push(field.range().report(v)),
@@ -427,7 +430,7 @@ impl<T: RecordTable> RecordColumns<T> {
             .into_iter()
             .map(|c| -> ArrayRef {
                 match c {
-                    CellColumn::Text(v) => Arc::new(StringArray::from(v)),
+                    CellColumn::Text(mut v) => Arc::new(v.finish()),
                     CellColumn::UInt(v) => Arc::new(UInt64Array::from(v)),
                     CellColumn::UInt32(v) => Arc::new(UInt32Array::from(v)),
                     CellColumn::Float(v) => Arc::new(Float64Array::from(v)),
