@@ -459,10 +459,11 @@ impl<T: RecordTable> RecordLists<T> {
         }
     }
 
-    /// Room for `more` lists as long, on average, as those pushed so far.
+    /// Room for `more` lists as long, on average, as those pushed so far (at most
+    /// [`RESERVE_LIMIT`] records: the first groups may be larger than the rest).
     fn reserve_like_pushed(&mut self, more: usize) {
         let lists = (self.offsets.len() - 1).max(1);
-        self.records.reserve(self.records.rows.div_ceil(lists) * more);
+        self.records.reserve(likely_items(self.records.rows, lists, more));
         self.offsets.reserve(more);
     }
 
@@ -511,6 +512,16 @@ impl Default for FitColumns {
     }
 }
 
+/// Most items a list child reserves ahead (32 MiB of `f64`); beyond it the column grows as
+/// it is filled.
+const RESERVE_LIMIT: usize = 1 << 22;
+
+/// Items for `more` lists at the average length of `lists` lists holding `items` in all,
+/// capped at [`RESERVE_LIMIT`].
+fn likely_items(items: usize, lists: usize, more: usize) -> usize {
+    items.div_ceil(lists).saturating_mul(more).min(RESERVE_LIMIT)
+}
+
 impl FitColumns {
     pub fn new() -> Self {
         FitColumns {
@@ -525,14 +536,16 @@ impl FitColumns {
 
     /// Reserves room for `more` groups shaped, on average, like those pushed so far: one
     /// allocation per column instead of repeated doubling, each of which copies the column
-    /// into fresh memory.
+    /// into fresh memory. List children are capped at [`RESERVE_LIMIT`] items, so a large
+    /// first group cannot make the reservation for many small ones huge.
     pub fn reserve_like_pushed(&mut self, more: usize) {
         let groups = (self.covariance_offsets.len() - 1).max(1);
         self.fits.reserve(more);
         self.terms.reserve_like_pushed(more);
         self.predictors.reserve_like_pushed(more);
         self.design.reserve_like_pushed(more);
-        self.covariance.reserve(self.covariance.len().div_ceil(groups) * more);
+        self.covariance
+            .reserve(likely_items(self.covariance.len(), groups, more));
         self.covariance_offsets.reserve(more);
     }
 
