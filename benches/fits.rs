@@ -7,9 +7,9 @@
 //!
 //! Options (after `--`): `--cases S,M,L,skewed,groups100k` (default all), `--keep DIR` (write the
 //! data to DIR and keep it, with `ratesheet_times.json` for `scripts/bench_peers.py`),
-//! `--repeats N` (best of N timed runs, default 3; then one untimed run counts the heap), `--cluster` (also run the floor and the 8-parameter fit of
-//! each case on an in-process Ballista cluster of two executors with one task slot each, and
-//! print the time next to the single-process one and the bytes of shuffle files written).
+//! `--repeats N` (best of N timed runs, default 3; then one untimed run counts the heap),
+//! `--cluster` (also run the floor and the 8-parameter fit of each case on an in-process
+//! Ballista cluster of two executors with one task slot each, and print the time next to the single-process one and the bytes of shuffle files written).
 //!
 //! Targets are the performance plan's; each printed line says `met` or `MISSED`.
 

@@ -402,6 +402,7 @@ impl<T: RecordTable> RecordColumns<T> {
     fn reserve(&mut self, more: usize) {
         for column in &mut self.cells {
             match column {
+                // Arrow's string builder has no reserve; its buffers grow as they fill.
                 CellColumn::Text(_) => {}
                 CellColumn::UInt(c) => c.reserve(more),
                 CellColumn::UInt32(c) => c.reserve(more),
