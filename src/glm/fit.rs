@@ -302,7 +302,7 @@ pub(crate) fn fit_with_row_count<F: Family>(
     }
 
     let start = warm_start(family, &standard.x, n, &active, y, offset, w, opts);
-    let Some(run) = irls(family, &standard.x, n, &active, y, offset, w, opts, start.as_deref()) else {
+    let Some(run) = irls(family, &standard.x, n, &active, y, offset, w, opts, start) else {
         issues.push(FitIssue::NumericalBreakdown);
         return Ok(unfitted(family, design, stats, issues));
     };

@@ -15,6 +15,7 @@ use nalgebra::DMatrix;
 
 use super::design::Design;
 use super::family::Family;
+use super::kernels::{lane_sum, linear_predictor, peak_deviation, scaled_square_sum, standardise};
 use super::solve::{ALIAS_TOLERANCE, NormalEquations, cholesky_in_place};
 
 /// Controls for IRLS.
@@ -57,22 +58,20 @@ impl Standardised {
                 x.extend_from_slice(col);
                 continue;
             }
-            let c = if intercept {
-                col.iter().sum::<f64>() / n as f64
-            } else {
-                0.0
-            };
+            let c = if intercept { lane_sum(col) / n as f64 } else { 0.0 };
             // Root mean square of (x - c), computed relative to max |x - c| so that values
             // near 1e200 do not overflow when squared.
-            let peak = col.iter().fold(0.0f64, |m, v| m.max((v - c).abs()));
-            let ms = col.iter().map(|v| ((v - c) / peak).powi(2)).sum::<f64>() / n as f64;
+            let peak = peak_deviation(col, c);
+            let ms = scaled_square_sum(col, c, 1.0 / peak) / n as f64;
             // A column constant after centring stays all-zero and is then found aliased.
             let s = if peak > 0.0 && peak.is_finite() && ms > 0.0 {
                 peak * ms.sqrt()
             } else {
                 1.0
             };
-            x.extend(col.iter().map(|v| (v - c) / s));
+            let filled = x.len();
+            x.resize(filled + n, 0.0);
+            standardise(col, c, s, &mut x[filled..]);
             center[j] = c;
             spread[j] = s;
         }
@@ -131,6 +130,13 @@ pub(crate) struct IrlsRun {
 /// Step-halving attempts before giving up on an iteration.
 const MAX_HALVINGS: usize = 30;
 
+/// Starting means of an IRLS run, with their linear predictor when it is at hand (otherwise it
+/// is g(mu), a logarithm per row for the log link).
+pub(crate) struct Start {
+    pub mu: Vec<f64>,
+    pub eta: Option<Vec<f64>>,
+}
+
 /// IRLS on the `active` columns of the standardised `x` (n rows), from the family's starting
 /// means or from `start` (the means of a nearby fit: a warm start for a run of related fits).
 #[allow(clippy::too_many_arguments)]
@@ -143,15 +149,18 @@ pub(crate) fn irls<F: Family>(
     offset: &[f64],
     w: &[f64],
     opts: FitOptions,
-    start: Option<&[f64]>,
+    start: Option<Start>,
 ) -> Option<IrlsRun> {
     let k = active.len();
-    let mut mu = vec![0.0; n];
-    match start {
-        Some(m) if m.len() == n => mu.copy_from_slice(m),
-        _ => family.start(y, offset, w, &mut mu),
-    }
-    let mut eta: Vec<f64> = mu.iter().map(|&m| family.link(m)).collect();
+    let (mut mu, eta) = match start {
+        Some(Start { mu, eta }) if mu.len() == n => (mu, eta.filter(|e| e.len() == n)),
+        _ => {
+            let mut mu = vec![0.0; n];
+            family.start(y, offset, w, &mut mu);
+            (mu, None)
+        }
+    };
+    let mut eta = eta.unwrap_or_else(|| mu.iter().map(|&m| family.link(m)).collect());
     let mut ww = vec![0.0; n];
     let mut z = vec![0.0; n];
     let mut ne = NormalEquations::new(k);
@@ -251,7 +260,7 @@ pub(crate) fn warm_start<F: Family>(
     offset: &[f64],
     w: &[f64],
     opts: FitOptions,
-) -> Option<Vec<f64>> {
+) -> Option<Start> {
     if n < WARM_START_ROWS || active.is_empty() || !family.subsample_start() {
         return None;
     }
@@ -289,19 +298,7 @@ pub(crate) fn warm_start<F: Family>(
         .iter()
         .zip(y)
         .all(|(&m, &y)| m.is_finite() && family.variance(m) > 0.0 && !(family.has_boundary() && m == 0.0 && y > 0.0));
-    usable.then_some(mu)
-}
-
-/// eta = offset + X[:, active]·b.
-fn linear_predictor(x: &[f64], n: usize, active: &[usize], b: &[f64], offset: &[f64], eta: &mut [f64]) {
-    eta.copy_from_slice(offset);
-    for (a, &j) in active.iter().enumerate() {
-        let col = &x[j * n..(j + 1) * n];
-        let coef = b[a];
-        for (e, &v) in eta.iter_mut().zip(col) {
-            *e += coef * v;
-        }
-    }
+    usable.then_some(Start { mu, eta: Some(eta) })
 }
 
 #[cfg(test)]
@@ -336,7 +333,7 @@ mod tests {
         let opts = FitOptions::default();
         let cold = irls(&Poisson, &x, n, &active, &y, &offset, &w, opts, None).unwrap();
         let start = warm_start(&Poisson, &x, n, &active, &y, &offset, &w, opts).expect("a warm start");
-        let warm = irls(&Poisson, &x, n, &active, &y, &offset, &w, opts, Some(&start)).unwrap();
+        let warm = irls(&Poisson, &x, n, &active, &y, &offset, &w, opts, Some(start)).unwrap();
         assert!(cold.converged && warm.converged);
         for (a, b) in cold.beta.iter().zip(&warm.beta) {
             assert!((a - b).abs() <= 1e-10 * (1.0 + a.abs()), "{a} vs {b}");

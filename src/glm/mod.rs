@@ -23,6 +23,7 @@ pub mod family;
 mod fit;
 pub mod inference;
 mod irls;
+mod kernels;
 pub mod negbin;
 mod overdispersion;
 pub mod profile;

@@ -18,7 +18,7 @@ use super::distributions::normal_quantile;
 use super::error::FitError;
 use super::family::Family;
 use super::fit::{FitInput, GlmFit, TermState};
-use super::irls::{FitOptions, Standardised, irls};
+use super::irls::{FitOptions, Standardised, Start, irls};
 
 /// Constrained refits made by this process (read by the benchmark to report refits per term).
 pub static REFITS: AtomicUsize = AtomicUsize::new(0);
@@ -167,7 +167,7 @@ impl<F: Family> ConstrainedFit for IrlsRefit<'_, F> {
                 &offset,
                 &self.w,
                 self.opts,
-                start.as_deref(),
+                start.map(|mu| Start { mu, eta: None }),
             );
             match run {
                 Some(run) if !run.stalled => (run.mu, run.deviance),

@@ -6,9 +6,7 @@
 //! on buffers reused across IRLS iterations (no allocation per iteration). Matrices here are
 //! small (k x k, k = number of active columns) and stored row-major in flat slices.
 
-/// Rows per block when accumulating X'WX: the block's weighted column stays in L1 cache while it
-/// is multiplied with every other column.
-const BLOCK: usize = 256;
+use super::kernels::{BLOCK, cross_products};
 
 /// Reusable buffers for one IRLS run.
 pub(crate) struct NormalEquations {
@@ -26,45 +24,17 @@ impl NormalEquations {
             k,
             gram: vec![0.0; k * k],
             rhs: vec![0.0; k],
-            weighted: vec![0.0; BLOCK],
+            weighted: vec![0.0; k * BLOCK],
         }
     }
 
     /// Accumulates X'WX (upper triangle) and, when `z` is given, X'Wz, over the columns of `x`
-    /// listed in `cols` (each column `n` contiguous values).
+    /// listed in `cols` (each column `n` contiguous values); see [`cross_products`].
     pub(crate) fn accumulate(&mut self, x: &[f64], n: usize, cols: &[usize], w: &[f64], z: Option<&[f64]>) {
-        let k = self.k;
-        debug_assert_eq!(cols.len(), k);
+        debug_assert_eq!(cols.len(), self.k);
         self.gram.iter_mut().for_each(|v| *v = 0.0);
         self.rhs.iter_mut().for_each(|v| *v = 0.0);
-        let mut start = 0;
-        while start < n {
-            let end = (start + BLOCK).min(n);
-            let len = end - start;
-            let wx = &mut self.weighted[..len];
-            for a in 0..k {
-                let xa = &x[cols[a] * n + start..cols[a] * n + end];
-                for ((o, &xi), &wi) in wx.iter_mut().zip(xa).zip(&w[start..end]) {
-                    *o = xi * wi;
-                }
-                let column = |b: usize| &x[cols[b] * n + start..cols[b] * n + end];
-                let mut b = a;
-                while b + 4 <= k {
-                    let sums = dot4(wx, [column(b), column(b + 1), column(b + 2), column(b + 3)]);
-                    for (j, v) in sums.into_iter().enumerate() {
-                        self.gram[a * k + b + j] += v;
-                    }
-                    b += 4;
-                }
-                for b in b..k {
-                    self.gram[a * k + b] += dot(wx, column(b));
-                }
-                if let Some(z) = z {
-                    self.rhs[a] += dot(wx, &z[start..end]);
-                }
-            }
-            start = end;
-        }
+        cross_products(x, n, cols, w, z, &mut self.gram, &mut self.rhs, &mut self.weighted);
     }
 
     /// Cholesky factorisation of the accumulated matrix in place. Returns false when the matrix
@@ -77,56 +47,6 @@ impl NormalEquations {
     pub(crate) fn solve(&mut self) {
         solve_in_place(&self.gram, self.k, &mut self.rhs);
     }
-}
-
-/// Dot product with four independent accumulators so the compiler can vectorise it.
-#[inline]
-pub(crate) fn dot(a: &[f64], b: &[f64]) -> f64 {
-    let n = a.len().min(b.len());
-    let (a, b) = (&a[..n], &b[..n]);
-    let mut acc = [0.0f64; 4];
-    let chunks = n / 4;
-    for c in 0..chunks {
-        let (ca, cb) = (&a[c * 4..c * 4 + 4], &b[c * 4..c * 4 + 4]);
-        for l in 0..4 {
-            acc[l] += ca[l] * cb[l];
-        }
-    }
-    let mut tail = 0.0;
-    for i in chunks * 4..n {
-        tail += a[i] * b[i];
-    }
-    (acc[0] + acc[1]) + (acc[2] + acc[3]) + tail
-}
-
-/// Four dot products of `a` with `b[0..4]` in one pass, so each value of `a` is loaded once
-/// for four products. Each sum is associated exactly as in [`dot`], so the results are the
-/// same bits as four calls of `dot`.
-#[inline]
-fn dot4(a: &[f64], b: [&[f64]; 4]) -> [f64; 4] {
-    let n = b.iter().fold(a.len(), |n, c| n.min(c.len()));
-    let a = &a[..n];
-    let b = b.map(|c| &c[..n]);
-    let mut acc = [[0.0f64; 4]; 4];
-    let chunks = n / 4;
-    for c in 0..chunks {
-        let ca = &a[c * 4..c * 4 + 4];
-        for (j, acc) in acc.iter_mut().enumerate() {
-            let cb = &b[j][c * 4..c * 4 + 4];
-            for l in 0..4 {
-                acc[l] += ca[l] * cb[l];
-            }
-        }
-    }
-    let mut out = [0.0; 4];
-    for (j, o) in out.iter_mut().enumerate() {
-        let mut tail = 0.0;
-        for i in chunks * 4..n {
-            tail += a[i] * b[j][i];
-        }
-        *o = (acc[j][0] + acc[j][1]) + (acc[j][2] + acc[j][3]) + tail;
-    }
-    out
 }
 
 /// Cholesky factorisation A = L L' of the symmetric matrix whose upper triangle is in `a`
@@ -240,23 +160,6 @@ mod tests {
         ne.solve();
         for (got, want) in ne.rhs.iter().zip([1.0, 2.0, 3.0]) {
             assert!((got - want).abs() < 1e-10, "{got} vs {want}");
-        }
-    }
-
-    #[test]
-    fn dot_handles_tails() {
-        let a: Vec<f64> = (0..11).map(f64::from).collect();
-        assert_eq!(dot(&a, &a), (0..11).map(|i| (i * i) as f64).sum::<f64>());
-    }
-
-    #[test]
-    fn dot4_gives_the_bits_of_four_dots() {
-        let col = |seed: f64| -> Vec<f64> { (0..1003).map(|i| ((i as f64) * seed).sin() * 1e3).collect() };
-        let a = col(0.37);
-        let b = [col(1.1), col(2.3), col(0.07), col(5.9)];
-        let four = dot4(&a, [&b[0], &b[1], &b[2], &b[3]]);
-        for j in 0..4 {
-            assert_eq!(four[j].to_bits(), dot(&a, &b[j]).to_bits());
         }
     }
 }
