@@ -25,23 +25,17 @@ use crate::glm::{Family, SeType, TermRow, TermState};
 
 /// Fits every group of `buffer` and returns one struct per group.
 pub fn evaluate_groups<B: GroupBuffer>(buffer: &mut B) -> Result<StructArray> {
-    buffer.arrange_by_group();
-    let buffer = &*buffer;
     let mut out = FitColumns::new();
-    let (offsets, mut order) = buffer.buckets();
-    let keys = buffer.hash_keys();
-    FIT_PROGRESS
-        .groups_started
-        .fetch_add(buffer.num_groups(), Ordering::Relaxed);
-    for g in 0..buffer.num_groups() {
-        let items = &mut order[offsets[g]..offsets[g + 1]];
-        buffer.sort_canonically(items, &keys);
-        fit_group(&buffer.group_data(g, items), &mut out)?;
+    let groups = buffer.num_groups();
+    FIT_PROGRESS.groups_started.fetch_add(groups, Ordering::Relaxed);
+    buffer.visit_groups(|g, data| {
+        fit_group(data, &mut out)?;
         if g == 0 {
-            out.reserve_like_pushed(buffer.num_groups() - 1);
+            out.reserve_like_pushed(groups - 1);
         }
         FIT_PROGRESS.groups_fitted.fetch_add(1, Ordering::Relaxed);
-    }
+        Ok(())
+    })?;
     Ok(out.finish())
 }
 

@@ -78,9 +78,6 @@ pub trait GroupBuffer: std::fmt::Debug + Send + Sync + Sized + 'static {
     fn content(&self) -> StateContent<'_>;
     /// Approximate heap bytes of the data (the common part is added by [`GroupBuffer::size`]).
     fn data_bytes(&self) -> usize;
-    /// Lays the items out group by group if that makes evaluation cheaper (the content is
-    /// unchanged; only where items live).
-    fn arrange_by_group(&mut self) {}
     /// Brings every item into the form [`GroupBuffer::content`] reads (the content is unchanged).
     fn settle(&mut self) {}
     /// Each group's items (rows or pattern slots): `order[offsets[g]..offsets[g + 1]]`.
@@ -94,6 +91,19 @@ pub trait GroupBuffer: std::fmt::Debug + Send + Sync + Sized + 'static {
     fn compare_items(&self, a: usize, b: usize) -> Ordering;
     /// The data of group `g`, whose items in canonical order are `items`.
     fn group_data(&self, g: usize, items: &[usize]) -> GroupData<'_>;
+
+    /// Hands each group's data, its items in canonical order, to `visit`, group by group; stops
+    /// at the first error. The content is unchanged (items may move).
+    fn visit_groups(&mut self, mut visit: impl FnMut(usize, &GroupData<'_>) -> Result<()>) -> Result<()> {
+        let (offsets, mut order) = self.buckets();
+        let keys = self.hash_keys();
+        for g in 0..self.num_groups() {
+            let items = &mut order[offsets[g]..offsets[g + 1]];
+            self.sort_canonically(items, &keys);
+            visit(g, &self.group_data(g, items))?;
+        }
+        Ok(())
+    }
 
     fn spec(&self) -> &ModelSpec {
         &self.common().spec

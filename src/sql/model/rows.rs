@@ -1,9 +1,12 @@
 //! Row buffers: every row of every group of one fit aggregate, for fits that need the rows.
 //!
-//! Rows of all groups live in shared flat columns with a group index per row (no per-group
-//! allocation while rows arrive); factor values are interned in one dictionary per predictor.
-//! At evaluation the rows are bucketed by group with a counting sort and put in canonical
-//! order ([`GroupBuffer::sort_canonically`]).
+//! Clean input batches are kept as they arrive, their rows put in group order within the batch
+//! (a radix sort while the batch is in cache), so that each group's rows in a batch form one
+//! run. Rows added one at a time (checked rows, merged states) go to shared flat columns with a
+//! group index per row. Factor values are interned in one dictionary per predictor. Evaluation
+//! copies one group at a time, run by run, into the flat columns (reused from group to group)
+//! and puts them in canonical order there ([`GroupBuffer::sort_canonically`]): no second copy of
+//! all rows is made.
 
 use std::cmp::Ordering;
 use std::sync::Arc;
@@ -29,10 +32,11 @@ pub struct GroupRows {
     batches: Vec<Batch>,
 }
 
-/// The rows of one clean input batch as the engine decoded them: the number columns are the
-/// batch's own Arrow arrays (shared, not copied), so a row is copied once, when the rows are
-/// laid out in group order ([`GroupBuffer::arrange_by_group`]), instead of also into growing
-/// flat columns (whose reallocations touched about twice the final bytes in fresh pages).
+/// The rows of one input batch, in group order (rows of one group keep their order). A batch
+/// that arrives in group order keeps the engine's own Arrow arrays (shared, not copied);
+/// otherwise each array is copied once, reordered. Either way a row is stored once, instead of
+/// also in growing flat columns (whose reallocations touched about twice the final bytes in
+/// fresh pages).
 #[derive(Debug, Clone)]
 struct Batch {
     group: Vec<u32>,
@@ -53,7 +57,74 @@ fn compact(a: &Float64Array) -> Float64Array {
     }
 }
 
+/// Row positions of `group` in group order, stable; `None` when the rows already are in group
+/// order. An LSD radix sort, 8 bits of the group index per pass, as many passes as the largest
+/// index needs (two for up to 65,536 groups).
+fn group_order(group: &[u32]) -> Option<Vec<u32>> {
+    if group.windows(2).all(|w| w[0] <= w[1]) {
+        return None;
+    }
+    let largest = group.iter().copied().max().unwrap_or(0);
+    let mut order: Vec<u32> = (0..group.len() as u32).collect();
+    let mut next = vec![0u32; group.len()];
+    let mut shift = 0;
+    while shift < 32 && (shift == 0 || largest >> shift > 0) {
+        let digit = |i: u32| ((group[i as usize] >> shift) & 0xff) as usize;
+        let mut starts = [0u32; 257];
+        for &i in &order {
+            starts[digit(i) + 1] += 1;
+        }
+        for d in 0..256 {
+            starts[d + 1] += starts[d];
+        }
+        for &i in &order {
+            let d = digit(i);
+            next[starts[d] as usize] = i;
+            starts[d] += 1;
+        }
+        std::mem::swap(&mut order, &mut next);
+        shift += 8;
+    }
+    Some(order)
+}
+
 impl Batch {
+    /// A batch of `inputs`' rows, `group[i]` being row i's group, stored in group order.
+    fn in_group_order(inputs: &BatchInputs, group: Vec<u32>) -> Batch {
+        let Some(order) = group_order(&group) else {
+            return Batch {
+                group,
+                y: compact(&inputs.y),
+                exposure: inputs.exposure.as_ref().map(compact),
+                columns: inputs
+                    .predictors
+                    .iter()
+                    .map(|c| match c {
+                        BatchColumn::Numeric(a) => BatchColumn::Numeric(compact(a)),
+                        BatchColumn::Codes(codes) => BatchColumn::Codes(codes.clone()),
+                    })
+                    .collect(),
+            };
+        };
+        let numbers = |a: &Float64Array| {
+            let v = a.values();
+            Float64Array::from(order.iter().map(|&i| v[i as usize]).collect::<Vec<f64>>())
+        };
+        Batch {
+            group: order.iter().map(|&i| group[i as usize]).collect(),
+            y: numbers(&inputs.y),
+            exposure: inputs.exposure.as_ref().map(numbers),
+            columns: inputs
+                .predictors
+                .iter()
+                .map(|c| match c {
+                    BatchColumn::Numeric(a) => BatchColumn::Numeric(numbers(a)),
+                    BatchColumn::Codes(codes) => BatchColumn::Codes(order.iter().map(|&i| codes[i as usize]).collect()),
+                })
+                .collect(),
+        }
+    }
+
     fn bytes(&self) -> usize {
         let cols: usize = self
             .columns
@@ -71,6 +142,20 @@ impl Batch {
 }
 
 impl GroupRows {
+    /// One empty column per predictor, of its kind.
+    fn empty_columns(spec: &ModelSpec) -> Vec<Column> {
+        spec.predictors
+            .iter()
+            .map(|p| {
+                if p.kind.is_factor() {
+                    Column::Factor(Vec::new())
+                } else {
+                    Column::Numeric(Vec::new())
+                }
+            })
+            .collect()
+    }
+
     /// Where each group starts when rows are laid out group by group: group g holds positions
     /// `offsets[g]..offsets[g + 1]`.
     fn group_offsets(&self) -> Vec<usize> {
@@ -101,9 +186,55 @@ impl GroupRows {
         (offsets, dest)
     }
 
-    /// Whether the rows are already in group order.
-    fn in_group_order(&self) -> bool {
-        self.batches.is_empty() && self.group.windows(2).all(|w| w[0] <= w[1])
+    /// The flat rows as a batch in group order, put first (the flat columns are left empty).
+    fn flat_into_batch(&mut self) {
+        if self.group.is_empty() {
+            return;
+        }
+        let predictors = std::mem::take(&mut self.columns)
+            .into_iter()
+            .map(|c| match c {
+                Column::Numeric(v) => BatchColumn::Numeric(Float64Array::from(v)),
+                Column::Factor(codes) => BatchColumn::Codes(codes),
+            })
+            .collect();
+        let inputs = BatchInputs {
+            y: Float64Array::from(std::mem::take(&mut self.y)),
+            exposure: Some(Float64Array::from(std::mem::take(&mut self.exposure))),
+            predictors,
+        };
+        let batch = Batch::in_group_order(&inputs, std::mem::take(&mut self.group));
+        self.columns = Self::empty_columns(&self.common.spec);
+        self.batches.insert(0, batch);
+    }
+
+    /// Replaces the flat rows by the rows of `runs` (batch, start, end), in that order; their
+    /// group indices are left empty (only [`GroupBuffer::visit_groups`] reads such rows).
+    fn load_runs(&mut self, batches: &[Batch], runs: &[(u32, u32, u32)]) {
+        self.group.clear();
+        self.y.clear();
+        self.exposure.clear();
+        for c in &mut self.columns {
+            match c {
+                Column::Numeric(v) => v.clear(),
+                Column::Factor(codes) => codes.clear(),
+            }
+        }
+        for &(b, start, end) in runs {
+            let (b, range) = (&batches[b as usize], start as usize..end as usize);
+            self.y.extend_from_slice(&b.y.values()[range.clone()]);
+            match &b.exposure {
+                Some(e) => self.exposure.extend_from_slice(&e.values()[range.clone()]),
+                None => self.exposure.resize(self.y.len(), 1.0),
+            }
+            for (c, from) in self.columns.iter_mut().zip(&b.columns) {
+                match (c, from) {
+                    (Column::Numeric(v), BatchColumn::Numeric(a)) => v.extend_from_slice(&a.values()[range.clone()]),
+                    (Column::Factor(codes), BatchColumn::Codes(c)) => codes.extend_from_slice(&c[range.clone()]),
+                    _ => unreachable!("column kinds follow the spec"),
+                }
+            }
+        }
     }
 
     /// Every row in the flat columns, in the order of arrival.
@@ -186,6 +317,51 @@ impl GroupRows {
     }
 }
 
+/// Where each group's rows lie in the batches: group g's runs are
+/// `runs[offsets[g]..offsets[g + 1]]`, each (batch, start, end), in batch order. Correct for
+/// any batch; a batch in group order holds at most one run per group.
+struct GroupRuns {
+    offsets: Vec<usize>,
+    runs: Vec<(u32, u32, u32)>,
+}
+
+impl GroupRuns {
+    fn new(batches: &[Batch], groups: usize) -> Self {
+        fn each_run(group: &[u32], mut f: impl FnMut(usize, u32, u32)) {
+            let mut start = 0;
+            while start < group.len() {
+                let g = group[start];
+                let mut end = start + 1;
+                while end < group.len() && group[end] == g {
+                    end += 1;
+                }
+                f(g as usize, start as u32, end as u32);
+                start = end;
+            }
+        }
+        let mut offsets = vec![0usize; groups + 1];
+        for b in batches {
+            each_run(&b.group, |g, _, _| offsets[g + 1] += 1);
+        }
+        for g in 0..groups {
+            offsets[g + 1] += offsets[g];
+        }
+        let mut next = offsets.clone();
+        let mut runs = vec![(0, 0, 0); offsets[groups]];
+        for (k, b) in batches.iter().enumerate() {
+            each_run(&b.group, |g, start, end| {
+                runs[next[g]] = (k as u32, start, end);
+                next[g] += 1;
+            });
+        }
+        GroupRuns { offsets, runs }
+    }
+
+    fn of(&self, g: usize) -> &[(u32, u32, u32)] {
+        &self.runs[self.offsets[g]..self.offsets[g + 1]]
+    }
+}
+
 /// `v` with element i moved to position `dest[i]`: one sequential read, one write cursor per
 /// group, which is far kinder to the cache than gathering a group's rows from all over `v`.
 fn scatter<T: Copy + Default>(v: &[T], dest: &[u32]) -> Vec<T> {
@@ -200,17 +376,7 @@ impl GroupBuffer for GroupRows {
     const LAYOUT: Layout = Layout::Rows;
 
     fn empty(spec: Arc<ModelSpec>) -> Self {
-        let columns = spec
-            .predictors
-            .iter()
-            .map(|p| {
-                if p.kind.is_factor() {
-                    Column::Factor(Vec::new())
-                } else {
-                    Column::Numeric(Vec::new())
-                }
-            })
-            .collect();
+        let columns = Self::empty_columns(&spec);
         GroupRows {
             common: Common::new(spec),
             group: Vec::new(),
@@ -246,24 +412,13 @@ impl GroupBuffer for GroupRows {
             + 2 * self.batches.iter().map(Batch::bytes).sum::<usize>()
     }
 
-    /// A clean batch is kept as it is (see [`Batch`]).
+    /// A clean batch is kept whole, in group order (see [`Batch`]).
     fn push_all(&mut self, inputs: &BatchInputs, group_indices: &[usize]) {
         if group_indices.is_empty() {
             return;
         }
-        self.batches.push(Batch {
-            group: group_indices.iter().map(|&g| g as u32).collect(),
-            y: compact(&inputs.y),
-            exposure: inputs.exposure.as_ref().map(compact),
-            columns: inputs
-                .predictors
-                .iter()
-                .map(|c| match c {
-                    BatchColumn::Numeric(a) => BatchColumn::Numeric(compact(a)),
-                    BatchColumn::Codes(codes) => BatchColumn::Codes(codes.clone()),
-                })
-                .collect(),
-        });
+        let group = group_indices.iter().map(|&g| g as u32).collect();
+        self.batches.push(Batch::in_group_order(inputs, group));
     }
 
     fn push_row(&mut self, inputs: &BatchInputs, row: usize, g: usize) {
@@ -349,15 +504,29 @@ impl GroupBuffer for GroupRows {
         }
     }
 
-    /// Moves the rows into group order, column by column (at most one column is held twice), so
-    /// that hashing, sorting and gathering a group touch one contiguous stretch of memory
-    /// instead of rows scattered over the whole buffer.
-    fn arrange_by_group(&mut self) {
-        if self.in_group_order() {
-            return;
+    /// One group at a time: its runs are copied into the flat columns (emptied first, their
+    /// memory reused from group to group) and sorted there. Flat rows first become a batch, so
+    /// that every row is in a batch while groups are visited; the batches are kept.
+    fn visit_groups(&mut self, mut visit: impl FnMut(usize, &GroupData<'_>) -> Result<()>) -> Result<()> {
+        self.flat_into_batch();
+        let batches = std::mem::take(&mut self.batches);
+        let runs = GroupRuns::new(&batches, self.num_groups());
+        let keys = self.hash_keys();
+        let mut items = Vec::new();
+        let mut result = Ok(());
+        for g in 0..self.num_groups() {
+            self.load_runs(&batches, runs.of(g));
+            items.clear();
+            items.extend(0..self.y.len());
+            self.sort_canonically(&mut items, &keys);
+            result = visit(g, &self.group_data(g, &items));
+            if result.is_err() {
+                break;
+            }
         }
-        let (_, dest) = self.group_positions();
-        self.lay_out(&dest);
+        self.load_runs(&batches, &[]);
+        self.batches = batches;
+        result
     }
 
     fn settle(&mut self) {
