@@ -114,7 +114,8 @@ pub trait Family: Sync {
     /// Starting fitted means for IRLS.
     fn start(&self, y: &[f64], offset: &[f64], w: &[f64], mu: &mut [f64]);
     /// Fitted means of the null model (intercept plus offset, or offset alone).
-    fn null_fitted(&self, y: &[f64], offset: &[f64], w: &[f64], intercept: bool, mu: &mut [f64]);
+    /// `exposure` is exp(offset), computed once per fit by the caller.
+    fn null_fitted(&self, y: &[f64], offset: &[f64], exposure: &[f64], w: &[f64], intercept: bool, mu: &mut [f64]);
     fn link(&self, mu: f64) -> f64;
     fn inverse_link(&self, eta: f64) -> f64;
     /// dmu/deta at `eta`.
@@ -190,16 +191,19 @@ impl Family for Poisson {
     /// mu0 = (y + E·r)/2 with E = exp(offset) and r = Σwy/ΣwE the crude rate: a blend of the data
     /// and the null model that respects the exposure (plain (y + ȳ)/2 ignores it).
     fn start(&self, y: &[f64], offset: &[f64], w: &[f64], mu: &mut [f64]) {
-        let rate = crude_rate(y, offset, w);
+        for (m, o) in mu.iter_mut().zip(offset) {
+            *m = o.exp();
+        }
+        let rate = crude_rate(y, mu, w);
         for i in 0..y.len() {
-            mu[i] = 0.5 * (y[i] + offset[i].exp() * rate).max(f64::MIN_POSITIVE);
+            mu[i] = 0.5 * (y[i] + mu[i] * rate).max(f64::MIN_POSITIVE);
         }
     }
     /// mu_i = E_i·Σwy/ΣwE with an intercept, mu_i = E_i without.
-    fn null_fitted(&self, y: &[f64], offset: &[f64], w: &[f64], intercept: bool, mu: &mut [f64]) {
-        let rate = if intercept { crude_rate(y, offset, w) } else { 1.0 };
-        for (m, o) in mu.iter_mut().zip(offset) {
-            *m = o.exp() * rate;
+    fn null_fitted(&self, y: &[f64], _offset: &[f64], exposure: &[f64], w: &[f64], intercept: bool, mu: &mut [f64]) {
+        let rate = if intercept { crude_rate(y, exposure, w) } else { 1.0 };
+        for (m, e) in mu.iter_mut().zip(exposure) {
+            *m = e * rate;
         }
     }
     fn link(&self, mu: f64) -> f64 {
@@ -270,7 +274,7 @@ impl Family for Gaussian {
     fn start(&self, y: &[f64], _offset: &[f64], _w: &[f64], mu: &mut [f64]) {
         mu.copy_from_slice(y);
     }
-    fn null_fitted(&self, y: &[f64], offset: &[f64], w: &[f64], intercept: bool, mu: &mut [f64]) {
+    fn null_fitted(&self, y: &[f64], offset: &[f64], _exposure: &[f64], w: &[f64], intercept: bool, mu: &mut [f64]) {
         let shift = if intercept {
             let sw: f64 = w.iter().sum();
             y.iter().zip(offset).zip(w).map(|((y, o), w)| w * (y - o)).sum::<f64>() / sw
@@ -309,12 +313,12 @@ impl Family for Gaussian {
     }
 }
 
-/// Σwy / Σw·exp(offset).
-pub(crate) fn crude_rate(y: &[f64], offset: &[f64], w: &[f64]) -> f64 {
+/// Σwy / Σw·E, with E = exp(offset) the exposure.
+pub(crate) fn crude_rate(y: &[f64], exposure: &[f64], w: &[f64]) -> f64 {
     let (mut sy, mut se) = (0.0, 0.0);
     for i in 0..y.len() {
         sy += w[i] * y[i];
-        se += w[i] * offset[i].exp();
+        se += w[i] * exposure[i];
     }
     sy / se
 }

@@ -278,11 +278,12 @@ pub(crate) fn fit_with_row_count<F: Family>(
     validate(family, n, &input, opts)?;
     let response = Response::new(input, n);
     let (y, offset, w) = (response.y, &*response.offset, &*response.w);
+    let exposure: Vec<f64> = offset.iter().map(|o| o.exp()).collect();
     let mut stats = FitStats {
         n_used: n,
         n_params: p,
         total_response: y.iter().zip(w).map(|(y, w)| y * w).sum(),
-        total_exposure: offset.iter().zip(w).map(|(o, w)| o.exp() * w).sum(),
+        total_exposure: exposure.iter().zip(w).map(|(e, w)| e * w).sum(),
         ..FitStats::default()
     };
     if let Some(trivial) = screen(family, design, &response, &mut stats, rows) {
@@ -307,7 +308,7 @@ pub(crate) fn fit_with_row_count<F: Family>(
         return Ok(unfitted(family, design, stats, issues));
     };
     let mut null_mu = vec![0.0; n];
-    family.null_fitted(y, offset, w, design.has_intercept(), &mut null_mu);
+    family.null_fitted(y, offset, &exposure, w, design.has_intercept(), &mut null_mu);
     stats.null_deviance = Some(weighted_deviance(family, y, &null_mu, w));
     stats.null_loglik = Some(family.log_likelihood(y, &null_mu, w)).filter(|l| l.is_finite());
 

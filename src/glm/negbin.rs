@@ -67,11 +67,10 @@ impl Family for NegativeBinomial<'_> {
     }
     /// The intercept-only fit at this alpha: r solves Σ w (y - E r)/(1 + alpha E r) = 0
     /// (Newton on log r from the crude rate); offset-only without an intercept.
-    fn null_fitted(&self, y: &[f64], offset: &[f64], w: &[f64], intercept: bool, mu: &mut [f64]) {
-        let exposure: Vec<f64> = offset.iter().map(|o| o.exp()).collect();
+    fn null_fitted(&self, y: &[f64], _offset: &[f64], exposure: &[f64], w: &[f64], intercept: bool, mu: &mut [f64]) {
         let mut rate = 1.0;
         if intercept {
-            rate = crude_rate(y, offset, w);
+            rate = crude_rate(y, exposure, w);
             for _ in 0..100 {
                 let (mut score, mut info) = (0.0, 0.0);
                 for i in 0..y.len() {
@@ -90,7 +89,7 @@ impl Family for NegativeBinomial<'_> {
                 }
             }
         }
-        for (m, e) in mu.iter_mut().zip(&exposure) {
+        for (m, e) in mu.iter_mut().zip(exposure) {
             *m = e * rate;
         }
     }
