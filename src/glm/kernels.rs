@@ -1,6 +1,8 @@
-//! The two dense kernels of an IRLS pass, over columns stored one after another (column j of an
-//! n-row matrix is `x[j * n..(j + 1) * n]`): the weighted cross products X'WX and X'Wz
-//! ([`cross_products`]) and the linear predictor eta = offset + X b ([`linear_predictor`]).
+//! The dense loops of an IRLS fit, over columns stored one after another (column j of an n-row
+//! matrix is `x[j * n..(j + 1) * n]`): the weighted cross products X'WX and X'Wz
+//! ([`cross_products`]), the linear predictor eta = offset + X b ([`linear_predictor`]), and the
+//! sums that standardise a column ([`lane_sum`], [`peak_deviation`], [`scaled_square_sum`],
+//! [`standardise`]).
 //!
 //! Hand-written rather than a gemm call because the pass needs the upper triangle only, the
 //! weights folded in block by block, and above all one fixed association of every sum, so that a
@@ -8,13 +10,15 @@
 //! * a cross product over a block of [`BLOCK`] rows is split into four lanes (row i goes to lane
 //!   i mod 4), each lane is a chain of fused multiply-adds in row order, the lanes are added as
 //!   (l0 + l1) + (l2 + l3), and block sums are added to the total in block order;
-//! * eta_i = fma(b_k, x_ik, ... fma(b_1, x_i1, offset_i)), columns in the order given.
+//! * eta_i = fma(b_k, x_ik, ... fma(b_1, x_i1, offset_i)), columns in the order given;
+//! * column sums use eight lanes the same way.
 //!
-//! Each kernel body is written once and compiled twice: for x86-64 processors with AVX2 and
-//! FMA (chosen at run time; the lanes become one vector register) and for any other processor.
-//! Both compile the same fused multiply-adds (`f64::mul_add` is exactly rounded everywhere; Rust
-//! never fuses or reorders floating-point operations on its own), so they agree to the bit; a
-//! test checks it.
+//! Every kernel runs in one of two compilations: for x86-64 processors with AVX2 and FMA
+//! (chosen at run time; four lanes are one vector register, the cross products' tiles written
+//! with explicit intrinsics because the compiler's own vectorisation of them spilled registers)
+//! and for any other processor. Both perform the same exactly rounded operations
+//! (`f64::mul_add` is one rounding everywhere; Rust never fuses or reorders floating-point
+//! operations on its own), so they agree to the bit; a test checks it.
 
 /// Rows per block: a block's weighted columns stay in L1 cache while they are multiplied with
 /// every other column.
