@@ -132,6 +132,25 @@ pub trait Family: Sync {
     fn unit_deviance(&self, y: f64, mu: f64) -> f64;
     /// Full log-likelihood of the fit (constants included).
     fn log_likelihood(&self, y: &[f64], mu: &[f64], w: &[f64]) -> f64;
+    /// [`Family::log_likelihood`] when the linear predictor `eta` of `mu` is known too (for the
+    /// log link log mu = eta, which saves a logarithm per row).
+    fn log_likelihood_at(&self, y: &[f64], eta: &[f64], mu: &[f64], w: &[f64]) -> f64 {
+        let _ = eta;
+        self.log_likelihood(y, mu, w)
+    }
+    /// The linear predictor of the null model's means ([`Family::null_fitted`]), when the family
+    /// gives it without a logarithm per row.
+    fn null_linear_predictor(
+        &self,
+        y: &[f64],
+        offset: &[f64],
+        exposure: &[f64],
+        w: &[f64],
+        intercept: bool,
+    ) -> Option<Vec<f64>> {
+        let _ = (y, offset, exposure, w, intercept);
+        None
+    }
     /// The part of the deviance that does not depend on the fit, computed once per fit for
     /// [`Family::step_deviance`].
     fn deviance_constant(&self, y: &[f64], w: &[f64]) -> f64 {
@@ -232,6 +251,31 @@ impl Family for Poisson {
             .zip(w)
             .map(|((&y, &m), &w)| w * (xlogy(y, m) - m - log_factorial(y)))
             .sum()
+    }
+    /// Σ w·(y·eta - mu - log Γ(y+1)), the same sum with log mu = eta.
+    fn log_likelihood_at(&self, y: &[f64], eta: &[f64], mu: &[f64], w: &[f64]) -> f64 {
+        (0..y.len())
+            .map(|i| {
+                let y_eta = if y[i] == 0.0 { 0.0 } else { y[i] * eta[i] };
+                w[i] * (y_eta - mu[i] - log_factorial(y[i]))
+            })
+            .sum()
+    }
+    /// log(E_i·r) = offset_i + log r, r the crude rate (1 without an intercept).
+    fn null_linear_predictor(
+        &self,
+        y: &[f64],
+        offset: &[f64],
+        exposure: &[f64],
+        w: &[f64],
+        intercept: bool,
+    ) -> Option<Vec<f64>> {
+        let log_rate = if intercept {
+            crude_rate(y, exposure, w).ln()
+        } else {
+            0.0
+        };
+        Some(offset.iter().map(|o| o + log_rate).collect())
     }
     /// Σ w·y·log y.
     fn deviance_constant(&self, y: &[f64], w: &[f64]) -> f64 {
@@ -367,4 +411,46 @@ pub(crate) fn xlogy(y: f64, mu: f64) -> f64 {
 /// y·log(y/mu), with 0·log 0 = 0.
 pub(crate) fn xlogy_ratio(y: f64, mu: f64) -> f64 {
     if y == 0.0 { 0.0 } else { y * (y / mu).ln() }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// The log-likelihood from the linear predictor (no logarithm per row) equals the one from
+    /// the means, for a fit's means and for the null model's, with and without an intercept.
+    #[test]
+    fn poisson_log_likelihood_from_eta_matches_the_one_from_mu() {
+        let y = [0.0, 3.0, 1.0, 0.0, 7.0, 2.0, 12.0, 0.0];
+        let offset: Vec<f64> = [0.5, 2.0, 1.5, 0.2, 4.0, 1.0, 9.0, 3.0]
+            .iter()
+            .map(|e: &f64| e.ln())
+            .collect();
+        let w = [1.0, 2.0, 1.0, 0.5, 1.0, 1.0, 3.0, 1.0];
+        let exposure: Vec<f64> = offset.iter().map(|o| o.exp()).collect();
+        let close = |a: f64, b: f64| (a - b).abs() <= 1e-13 * b.abs();
+        let eta: Vec<f64> = offset
+            .iter()
+            .enumerate()
+            .map(|(i, o)| o + 0.3 - 0.05 * i as f64)
+            .collect();
+        let mu: Vec<f64> = eta.iter().map(|e| e.exp()).collect();
+        let (a, b) = (
+            Poisson.log_likelihood_at(&y, &eta, &mu, &w),
+            Poisson.log_likelihood(&y, &mu, &w),
+        );
+        assert!(close(a, b), "{a} vs {b}");
+        for intercept in [true, false] {
+            let mut null_mu = vec![0.0; y.len()];
+            Poisson.null_fitted(&y, &offset, &exposure, &w, intercept, &mut null_mu);
+            let null_eta = Poisson
+                .null_linear_predictor(&y, &offset, &exposure, &w, intercept)
+                .unwrap();
+            let (a, b) = (
+                Poisson.log_likelihood_at(&y, &null_eta, &null_mu, &w),
+                Poisson.log_likelihood(&y, &null_mu, &w),
+            );
+            assert!(close(a, b), "intercept {intercept}: {a} vs {b}");
+        }
+    }
 }

@@ -310,7 +310,11 @@ pub(crate) fn fit_with_row_count<F: Family>(
     let mut null_mu = vec![0.0; n];
     family.null_fitted(y, offset, &exposure, w, design.has_intercept(), &mut null_mu);
     stats.null_deviance = Some(weighted_deviance(family, y, &null_mu, w));
-    stats.null_loglik = Some(family.log_likelihood(y, &null_mu, w)).filter(|l| l.is_finite());
+    let null_loglik = match family.null_linear_predictor(y, offset, &exposure, w, design.has_intercept()) {
+        Some(null_eta) => family.log_likelihood_at(y, &null_eta, &null_mu, w),
+        None => family.log_likelihood(y, &null_mu, w),
+    };
+    stats.null_loglik = Some(null_loglik).filter(|l| l.is_finite());
 
     if let Some(fit) = boundary_refit(family, design, input, opts, &aliased, &run, &null_mu, &stats)? {
         return Ok(fit);
@@ -323,7 +327,7 @@ pub(crate) fn fit_with_row_count<F: Family>(
         issues.push(FitIssue::NumericalBreakdown);
         return Ok(unfitted(family, design, stats, issues));
     };
-    statistics(family, &response, &run.mu, rows, &mut stats);
+    statistics(family, &response, &run.eta, &run.mu, rows, &mut stats);
     if !run.converged {
         issues.push(FitIssue::NotConverged {
             iterations: run.iterations,
@@ -437,8 +441,15 @@ fn covariances<F: Family>(
 }
 
 /// Deviance, Pearson X², log-likelihood with AIC/BIC, and the family's own tests of a fit with
-/// means `mu`; `rows` is the number of rows the fit stands for.
-fn statistics<F: Family>(family: &F, response: &Response<'_>, mu: &[f64], rows: usize, stats: &mut FitStats) {
+/// means `mu` (linear predictor `eta`); `rows` is the number of rows the fit stands for.
+fn statistics<F: Family>(
+    family: &F,
+    response: &Response<'_>,
+    eta: &[f64],
+    mu: &[f64],
+    rows: usize,
+    stats: &mut FitStats,
+) {
     let (y, w) = (response.y, &*response.w);
     stats.deviance = Some(weighted_deviance(family, y, mu, w));
     stats.pearson_chi2 = Some(
@@ -446,7 +457,7 @@ fn statistics<F: Family>(family: &F, response: &Response<'_>, mu: &[f64], rows: 
             .map(|i| w[i] * (y[i] - mu[i]).powi(2) / family.variance(mu[i]))
             .sum(),
     );
-    set_information_criteria(stats, family, family.log_likelihood(y, mu, w));
+    set_information_criteria(stats, family, family.log_likelihood_at(y, eta, mu, w));
     stats.extra = family.extra_tests(y, mu, response.weights, rows);
 }
 
