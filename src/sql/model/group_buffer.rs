@@ -80,8 +80,6 @@ pub trait GroupBuffer: std::fmt::Debug + Send + Sync + Sized + 'static {
     fn data_bytes(&self) -> usize;
     /// Brings every item into the form [`GroupBuffer::content`] reads (the content is unchanged).
     fn settle(&mut self) {}
-    /// Each group's items (rows or pattern slots): `order[offsets[g]..offsets[g + 1]]`.
-    fn buckets(&self) -> (Vec<usize>, Vec<usize>);
     /// Whatever hashing items needs, prepared once per evaluation (hashes of factor labels).
     type HashKeys;
     fn hash_keys(&self) -> Self::HashKeys;
@@ -94,16 +92,7 @@ pub trait GroupBuffer: std::fmt::Debug + Send + Sync + Sized + 'static {
 
     /// Hands each group's data, its items in canonical order, to `visit`, group by group; stops
     /// at the first error. The content is unchanged (items may move).
-    fn visit_groups(&mut self, mut visit: impl FnMut(usize, &GroupData<'_>) -> Result<()>) -> Result<()> {
-        let (offsets, mut order) = self.buckets();
-        let keys = self.hash_keys();
-        for g in 0..self.num_groups() {
-            let items = &mut order[offsets[g]..offsets[g + 1]];
-            self.sort_canonically(items, &keys);
-            visit(g, &self.group_data(g, items))?;
-        }
-        Ok(())
-    }
+    fn visit_groups(&mut self, visit: impl FnMut(usize, &GroupData<'_>) -> Result<()>) -> Result<()>;
 
     fn spec(&self) -> &ModelSpec {
         &self.common().spec

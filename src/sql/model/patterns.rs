@@ -91,6 +91,26 @@ impl GroupPatterns {
     fn number(&self, s: usize, k: usize) -> f64 {
         f64::from_bits(self.value(s, k))
     }
+
+    /// Each group's slots: `order[offsets[g]..offsets[g + 1]]`.
+    fn buckets(&self) -> (Vec<usize>, Vec<usize>) {
+        let groups = self.num_groups();
+        let mut counts = vec![0usize; groups + 1];
+        for &g in &self.slot_group {
+            counts[g as usize + 1] += 1;
+        }
+        for g in 0..groups {
+            counts[g + 1] += counts[g];
+        }
+        let mut next = counts.clone();
+        let mut order = vec![0usize; self.sums.len()];
+        for (s, &g) in self.slot_group.iter().enumerate() {
+            let g = g as usize;
+            order[next[g]] = s;
+            next[g] += 1;
+        }
+        (counts, order)
+    }
 }
 
 impl GroupBuffer for GroupPatterns {
@@ -229,23 +249,15 @@ impl GroupBuffer for GroupPatterns {
         }
     }
 
-    fn buckets(&self) -> (Vec<usize>, Vec<usize>) {
-        let groups = self.num_groups();
-        let mut counts = vec![0usize; groups + 1];
-        for &g in &self.slot_group {
-            counts[g as usize + 1] += 1;
+    fn visit_groups(&mut self, mut visit: impl FnMut(usize, &GroupData<'_>) -> Result<()>) -> Result<()> {
+        let (offsets, mut order) = self.buckets();
+        let keys = self.hash_keys();
+        for g in 0..self.num_groups() {
+            let slots = &mut order[offsets[g]..offsets[g + 1]];
+            self.sort_canonically(slots, &keys);
+            visit(g, &self.group_data(g, slots))?;
         }
-        for g in 0..groups {
-            counts[g + 1] += counts[g];
-        }
-        let mut next = counts.clone();
-        let mut order = vec![0usize; self.sums.len()];
-        for (s, &g) in self.slot_group.iter().enumerate() {
-            let g = g as usize;
-            order[next[g]] = s;
-            next[g] += 1;
-        }
-        (counts, order)
+        Ok(())
     }
 
     fn hash_keys(&self) -> Vec<Vec<u64>> {

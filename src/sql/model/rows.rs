@@ -256,7 +256,7 @@ impl GroupRows {
     /// one column at a time (at most one column is held twice), and drops the batches.
     fn lay_out(&mut self, dest: &[u32]) {
         let total = dest.len();
-        fn place<T: Copy + Default>(out: &mut Vec<T>, parts: impl Iterator<Item = T>, dest: &[u32]) {
+        fn place<T: Copy + Default>(out: &mut [T], parts: impl Iterator<Item = T>, dest: &[u32]) {
             for (x, &d) in parts.zip(dest) {
                 out[d as usize] = x;
             }
@@ -407,8 +407,8 @@ impl GroupBuffer for GroupRows {
         self.group.capacity() * 4
             + (self.y.capacity() + self.exposure.capacity()) * 8
             + cols
-            // Batches count twice: laying them out (for evaluation or for the state) builds
-            // the flat copy while they are still held.
+            // Batches count twice: laying them out for the state builds the flat copy while
+            // they are still held.
             + 2 * self.batches.iter().map(Batch::bytes).sum::<usize>()
     }
 
@@ -524,24 +524,20 @@ impl GroupBuffer for GroupRows {
                 break;
             }
         }
-        self.load_runs(&batches, &[]);
+        // The scratch is as large as the largest group: give its memory back.
+        for c in &mut self.columns {
+            *c = match c {
+                Column::Numeric(_) => Column::Numeric(Vec::new()),
+                Column::Factor(_) => Column::Factor(Vec::new()),
+            };
+        }
+        (self.y, self.exposure, self.group) = (Vec::new(), Vec::new(), Vec::new());
         self.batches = batches;
         result
     }
 
     fn settle(&mut self) {
         GroupRows::settle(self);
-    }
-
-    fn buckets(&self) -> (Vec<usize>, Vec<usize>) {
-        let counts = self.group_offsets();
-        let mut order = vec![0usize; self.group.len()];
-        let mut next = counts.clone();
-        for (i, &g) in self.group.iter().enumerate() {
-            order[next[g as usize]] = i;
-            next[g as usize] += 1;
-        }
-        (counts, order)
     }
 
     type HashKeys = Vec<Vec<u64>>;
