@@ -89,39 +89,36 @@ fn group_order(group: &[u32]) -> Option<Vec<u32>> {
 }
 
 impl Batch {
-    /// A batch of `inputs`' rows, `group[i]` being row i's group, stored in group order.
+    /// A batch of `inputs`' rows, `group[i]` being row i's group, stored in group order (the
+    /// engine's arrays themselves, compacted, when the rows already are in that order).
     fn in_group_order(inputs: &BatchInputs, group: Vec<u32>) -> Batch {
-        let Some(order) = group_order(&group) else {
-            return Batch {
-                group,
-                y: compact(&inputs.y),
-                exposure: inputs.exposure.as_ref().map(compact),
-                columns: inputs
-                    .predictors
-                    .iter()
-                    .map(|c| match c {
-                        BatchColumn::Numeric(a) => BatchColumn::Numeric(compact(a)),
-                        BatchColumn::Codes(codes) => BatchColumn::Codes(codes.clone()),
-                    })
-                    .collect(),
-            };
+        let order = group_order(&group);
+        let numbers = |a: &Float64Array| match &order {
+            None => compact(a),
+            Some(order) => {
+                let v = a.values();
+                Float64Array::from(order.iter().map(|&i| v[i as usize]).collect::<Vec<f64>>())
+            }
         };
-        let numbers = |a: &Float64Array| {
-            let v = a.values();
-            Float64Array::from(order.iter().map(|&i| v[i as usize]).collect::<Vec<f64>>())
+        let codes = |c: &[u32]| -> Vec<u32> {
+            match &order {
+                None => c.to_vec(),
+                Some(order) => order.iter().map(|&i| c[i as usize]).collect(),
+            }
         };
+        let columns = inputs
+            .predictors
+            .iter()
+            .map(|c| match c {
+                BatchColumn::Numeric(a) => BatchColumn::Numeric(numbers(a)),
+                BatchColumn::Codes(c) => BatchColumn::Codes(codes(c)),
+            })
+            .collect();
         Batch {
-            group: order.iter().map(|&i| group[i as usize]).collect(),
             y: numbers(&inputs.y),
             exposure: inputs.exposure.as_ref().map(numbers),
-            columns: inputs
-                .predictors
-                .iter()
-                .map(|c| match c {
-                    BatchColumn::Numeric(a) => BatchColumn::Numeric(numbers(a)),
-                    BatchColumn::Codes(codes) => BatchColumn::Codes(order.iter().map(|&i| codes[i as usize]).collect()),
-                })
-                .collect(),
+            columns,
+            group: if order.is_some() { codes(&group) } else { group },
         }
     }
 
