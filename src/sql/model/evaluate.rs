@@ -36,7 +36,7 @@ pub fn evaluate_groups<B: GroupBuffer>(buffer: &mut B) -> Result<StructArray> {
         FIT_PROGRESS.groups_fitted.fetch_add(1, Ordering::Relaxed);
         Ok(())
     })?;
-    Ok(out.finish())
+    out.finish()
 }
 
 /// Process-wide counts of groups handed to the fit and fitted, for progress displays: a reader
@@ -175,13 +175,11 @@ fn fit_group(data: &GroupData<'_>, out: &mut FitColumns) -> Result<()> {
     };
     let design = match (&problem, Design::build(n, &design_spec)) {
         (Some(p), _) => {
-            out.push(&report(p.clone(), 0), Vec::new(), &infos, &[], None);
-            return Ok(());
+            return out.push(&report(p.clone(), 0), Vec::new(), &infos, &[], None);
         }
         // A too-wide design is a property of this group's data: it is reported on the group.
         (None, Err(e)) => {
-            out.push(&report(format!("not fitted: {e}"), 0), Vec::new(), &infos, &[], None);
-            return Ok(());
+            return out.push(&report(format!("not fitted: {e}"), 0), Vec::new(), &infos, &[], None);
         }
         (None, Ok(d)) => d,
     };
@@ -210,8 +208,7 @@ fn fit_group(data: &GroupData<'_>, out: &mut FitColumns) -> Result<()> {
         ..report(status, design.n_columns())
     };
     let covariance = coefficient_covariance(&fitted, settings.se_type());
-    out.push(&report, terms, &infos, &entries, covariance.as_ref());
-    Ok(())
+    out.push(&report, terms, &infos, &entries, covariance.as_ref())
 }
 
 /// The fit of one group's design: on pattern sums, or on rows with the spec's family (one

@@ -13,11 +13,11 @@
 
 use std::sync::{Arc, LazyLock};
 
+use datafusion::arrow::array::NullBufferBuilder;
 use datafusion::arrow::array::{
-    Array, ArrayRef, AsArray, BooleanArray, Float64Array, ListArray, StringBuilder, StructArray, UInt32Array,
-    UInt64Array,
+    Array, ArrayRef, ArrowPrimitiveType, AsArray, BooleanBuilder, ListArray, PrimitiveArray, StringArray, StructArray,
 };
-use datafusion::arrow::buffer::OffsetBuffer;
+use datafusion::arrow::buffer::{Buffer, OffsetBuffer, ScalarBuffer};
 use datafusion::arrow::datatypes::{DataType, Field, Fields, Float64Type, UInt32Type, UInt64Type};
 use datafusion::error::{DataFusionError, Result};
 
@@ -74,9 +74,9 @@ impl CellType {
     }
 }
 
-/// One field value of a record.
-pub enum Cell {
-    Text(Option<String>),
+/// One field value of a record; text is borrowed from the record.
+pub enum Cell<'r> {
+    Text(Option<&'r str>),
     UInt(Option<u64>),
     UInt32(Option<u32>),
     Float(Option<f64>),
@@ -90,7 +90,7 @@ pub trait RecordTable: Copy + PartialEq + std::fmt::Debug + 'static {
     fn name(self) -> &'static str;
     fn cell_type(self) -> CellType;
     fn range(self) -> Range;
-    fn cell(self, record: &Self::Record<'_>) -> Cell;
+    fn cell<'r>(self, record: &'r Self::Record<'_>) -> Cell<'r>;
 
     /// The Arrow fields of the table, in order.
     fn fields() -> Fields {
@@ -125,7 +125,7 @@ macro_rules! record_table {
                 match self { $($table::$variant => Range::$range),* }
             }
             #[allow(clippy::redundant_closure_call)]
-            fn cell(self, record: &Self::Record<'_>) -> Cell {
+            fn cell<'r>(self, record: &'r Self::Record<'_>) -> Cell<'r> {
                 match self { $($table::$variant => { let $r = record; Cell::$ty($get) }),* }
             }
         }
@@ -204,8 +204,8 @@ record_table! {
     /// The fit-level fields, in order (the three lists follow them: [`TERMS`], [`PREDICTORS`],
     /// [`DESIGN`]).
     FitField over <'a> GroupReport<'a> {
-        Status: "status", Text, Any, |r| Some(r.status.clone());
-        Family: "family", Text, Any, |r| Some(r.family.name().to_string());
+        Status: "status", Text, Any, |r| Some(r.status.as_str());
+        Family: "family", Text, Any, |r| Some(r.family.name());
         NUsed: "n_used", UInt, Any, |r| Some(r.n_used);
         NSkipped: "n_skipped", UInt, Any, |r| Some(r.n_skipped);
         NInvalid: "n_invalid", UInt, Any, |r| Some(r.n_invalid);
@@ -234,9 +234,9 @@ record_table! {
         TotalCount: "total_count", Float, NonNegative, |r| r.total_count;
         TotalExposure: "total_exposure", Float, NonNegative, |r| r.total_exposure;
         CrudeRate: "crude_rate", Float, NonNegative, |r| r.crude_rate();
-        SeType: "se_type", Text, Any, |r| Some(r.se_type.to_string());
+        SeType: "se_type", Text, Any, |r| Some(r.se_type);
         Level: "level", Float, Probability, |r| Some(r.level);
-        CiMethod: "ci_method", Text, Any, |r| Some(r.ci_method.to_string());
+        CiMethod: "ci_method", Text, Any, |r| Some(r.ci_method);
         Alpha: "alpha", Float, NonNegative, |r| r.alpha().map(|a| a.estimate);
         AlphaStdError: "alpha_std_error", Float, NonNegative, |r| r.alpha().and_then(|a| a.std_error);
         AlphaCiLow: "alpha_ci_low", Float, NonNegative, |r| r.alpha_interval().map(|i| i.0);
@@ -249,7 +249,7 @@ record_table! {
 record_table! {
     /// The fields of one entry of `terms` (fixed names).
     TermField over <'a> TermRow {
-        Term: "term", Text, Any, |t| Some(t.term.clone());
+        Term: "term", Text, Any, |t| Some(t.term.as_str());
         Estimate: "estimate", Float, Any, |t| t.estimate;
         StdError: "std_error", Float, NonNegative, |t| t.std_error;
         Z: "z", Float, Any, |t| t.statistic;
@@ -259,7 +259,7 @@ record_table! {
         RateRatio: "rate_ratio", Float, NonNegative, |t| t.rate_ratio;
         RrLow: "rr_low", Float, NonNegative, |t| t.rr_low;
         RrHigh: "rr_high", Float, NonNegative, |t| t.rr_high;
-        Flag: "flag", Text, Any, |t| t.flag.map(str::to_string);
+        Flag: "flag", Text, Any, |t| t.flag;
     }
 }
 
@@ -275,9 +275,9 @@ pub struct PredictorInfo {
 record_table! {
     /// The fields of one entry of `predictors`.
     PredictorField over <'a> PredictorInfo {
-        Name: "name", Text, Any, |p| Some(p.name.clone());
-        Kind: "kind", Text, Any, |p| Some(p.kind.report_name().to_string());
-        Reference: "reference", Text, Any, |p| p.reference.clone();
+        Name: "name", Text, Any, |p| Some(p.name.as_str());
+        Kind: "kind", Text, Any, |p| Some(p.kind.report_name());
+        Reference: "reference", Text, Any, |p| p.reference.as_deref();
     }
 }
 
@@ -313,11 +313,11 @@ impl DesignEntry {
 record_table! {
     /// The fields of one entry of `design`.
     DesignField over <'a> DesignEntry {
-        Term: "term", Text, Any, |d| Some(d.term.clone());
+        Term: "term", Text, Any, |d| Some(d.term.as_str());
         Predictor: "predictor", UInt32, Any, |d| d.predictor;
-        Level: "level", Text, Any, |d| d.level.clone();
+        Level: "level", Text, Any, |d| d.level.as_deref();
         Predictor2: "predictor2", UInt32, Any, |d| d.predictor2;
-        Level2: "level2", Text, Any, |d| d.level2.clone();
+        Level2: "level2", Text, Any, |d| d.level2.as_deref();
     }
 }
 
@@ -370,14 +370,92 @@ struct RecordColumns<T: RecordTable> {
     _table: std::marker::PhantomData<T>,
 }
 
+/// The cells of one field, kept in Arrow's own layout (values, offsets, validity bits) so that
+/// finishing hands the buffers over without a copy; each column can reserve room up front.
 enum CellColumn {
-    /// Text cells go straight into Arrow's string layout (bytes and offsets), not one heap
-    /// string per cell kept until the end.
-    Text(StringBuilder),
-    UInt(Vec<Option<u64>>),
-    UInt32(Vec<Option<u32>>),
-    Float(Vec<Option<f64>>),
-    Bool(Vec<Option<bool>>),
+    Text(TextCells),
+    UInt(NumberCells<UInt64Type>),
+    UInt32(NumberCells<UInt32Type>),
+    Float(NumberCells<Float64Type>),
+    Bool(BooleanBuilder),
+}
+
+/// Numbers with a validity bitmap that is only materialised once a NULL arrives.
+struct NumberCells<T: ArrowPrimitiveType> {
+    values: Vec<T::Native>,
+    valid: NullBufferBuilder,
+}
+
+impl<T: ArrowPrimitiveType> NumberCells<T> {
+    fn new() -> Self {
+        NumberCells {
+            values: Vec::new(),
+            valid: NullBufferBuilder::new(0),
+        }
+    }
+
+    fn push(&mut self, v: Option<T::Native>) {
+        self.values.push(v.unwrap_or_default());
+        self.valid.append(v.is_some());
+    }
+
+    fn reserve(&mut self, more: usize) {
+        self.values.reserve(more);
+    }
+
+    fn finish(mut self) -> PrimitiveArray<T> {
+        PrimitiveArray::new(ScalarBuffer::from(self.values), self.valid.finish())
+    }
+}
+
+/// Text in Arrow's `Utf8` layout: the bytes of all cells and each cell's end offset.
+struct TextCells {
+    bytes: Vec<u8>,
+    offsets: Vec<i32>,
+    valid: NullBufferBuilder,
+}
+
+impl TextCells {
+    fn new() -> Self {
+        TextCells {
+            bytes: Vec::new(),
+            offsets: vec![0],
+            valid: NullBufferBuilder::new(0),
+        }
+    }
+
+    fn push(&mut self, v: Option<&str>) -> Result<()> {
+        self.bytes.extend_from_slice(v.unwrap_or_default().as_bytes());
+        self.offsets.push(offset(self.bytes.len(), "text")?);
+        self.valid.append(v.is_some());
+        Ok(())
+    }
+
+    /// Room for `more` cells as long, on average, as those pushed so far.
+    fn reserve(&mut self, more: usize) {
+        let cells = (self.offsets.len() - 1).max(1);
+        self.bytes.reserve(likely_items(self.bytes.len(), cells, more));
+        self.offsets.reserve(more);
+    }
+
+    fn finish(mut self) -> Result<StringArray> {
+        let offsets = OffsetBuffer::new(ScalarBuffer::from(self.offsets));
+        Ok(StringArray::try_new(
+            offsets,
+            Buffer::from_vec(self.bytes),
+            self.valid.finish(),
+        )?)
+    }
+}
+
+/// `len` as an Arrow 32-bit offset, or an error naming what outgrew it (a result column of one
+/// batch holds at most 2 GiB of `what`).
+fn offset(len: usize, what: &str) -> Result<i32> {
+    i32::try_from(len).map_err(|_| {
+        DataFusionError::Execution(format!(
+            "the fit results of one batch hold more than 2 GiB of {what}; fit fewer groups per query"
+        ))
+    })
 }
 
 impl<T: RecordTable> RecordColumns<T> {
@@ -385,11 +463,11 @@ impl<T: RecordTable> RecordColumns<T> {
         let cells = T::all()
             .iter()
             .map(|f| match f.cell_type() {
-                CellType::Text => CellColumn::Text(StringBuilder::new()),
-                CellType::UInt => CellColumn::UInt(Vec::new()),
-                CellType::UInt32 => CellColumn::UInt32(Vec::new()),
-                CellType::Float => CellColumn::Float(Vec::new()),
-                CellType::Bool => CellColumn::Bool(Vec::new()),
+                CellType::Text => CellColumn::Text(TextCells::new()),
+                CellType::UInt => CellColumn::UInt(NumberCells::new()),
+                CellType::UInt32 => CellColumn::UInt32(NumberCells::new()),
+                CellType::Float => CellColumn::Float(NumberCells::new()),
+                CellType::Bool => CellColumn::Bool(BooleanBuilder::new()),
             })
             .collect();
         RecordColumns {
@@ -402,47 +480,48 @@ impl<T: RecordTable> RecordColumns<T> {
     fn reserve(&mut self, more: usize) {
         for column in &mut self.cells {
             match column {
-                // Arrow's string builder has no reserve; its buffers grow as they fill.
-                CellColumn::Text(_) => {}
+                CellColumn::Text(c) => c.reserve(more),
                 CellColumn::UInt(c) => c.reserve(more),
                 CellColumn::UInt32(c) => c.reserve(more),
                 CellColumn::Float(c) => c.reserve(more),
-                CellColumn::Bool(c) => c.reserve(more),
+                // One bit per cell: growing by doubling costs next to nothing.
+                CellColumn::Bool(_) => {}
             }
         }
     }
 
-    fn push(&mut self, record: &T::Record<'_>) {
+    fn push(&mut self, record: &T::Record<'_>) -> Result<()> {
         for (field, column) in T::all().iter().zip(&mut self.cells) {
             match (field.cell(record), column) {
-                (Cell::Text(v), CellColumn::Text(c)) => c.append_option(v),
+                (Cell::Text(v), CellColumn::Text(c)) => c.push(v)?,
                 (Cell::UInt(v), CellColumn::UInt(c)) => c.push(v),
                 (Cell::UInt32(v), CellColumn::UInt32(c)) => c.push(v),
                 (Cell::Float(v), CellColumn::Float(c)) => c.push(field.range().report(v)),
-                (Cell::Bool(v), CellColumn::Bool(c)) => c.push(v),
+                (Cell::Bool(v), CellColumn::Bool(c)) => c.append_option(v),
                 _ => unreachable!("a field's cell has the field's type"),
             }
         }
         self.rows += 1;
+        Ok(())
     }
 
-    fn arrays(self) -> Vec<ArrayRef> {
+    fn arrays(self) -> Result<Vec<ArrayRef>> {
         self.cells
             .into_iter()
-            .map(|c| -> ArrayRef {
-                match c {
-                    CellColumn::Text(mut v) => Arc::new(v.finish()),
-                    CellColumn::UInt(v) => Arc::new(UInt64Array::from(v)),
-                    CellColumn::UInt32(v) => Arc::new(UInt32Array::from(v)),
-                    CellColumn::Float(v) => Arc::new(Float64Array::from(v)),
-                    CellColumn::Bool(v) => Arc::new(BooleanArray::from(v)),
-                }
+            .map(|c| -> Result<ArrayRef> {
+                Ok(match c {
+                    CellColumn::Text(v) => Arc::new(v.finish()?),
+                    CellColumn::UInt(v) => Arc::new(v.finish()),
+                    CellColumn::UInt32(v) => Arc::new(v.finish()),
+                    CellColumn::Float(v) => Arc::new(v.finish()),
+                    CellColumn::Bool(mut v) => Arc::new(v.finish()),
+                })
             })
             .collect()
     }
 
-    fn finish(self) -> StructArray {
-        StructArray::new(T::fields(), self.arrays(), None)
+    fn finish(self) -> Result<StructArray> {
+        Ok(StructArray::try_new(T::fields(), self.arrays()?, None)?)
     }
 }
 
@@ -468,23 +547,24 @@ impl<T: RecordTable> RecordLists<T> {
         self.offsets.reserve(more);
     }
 
-    fn push_row<'r>(&mut self, records: impl IntoIterator<Item = &'r T::Record<'r>>)
+    fn push_row<'r>(&mut self, records: impl IntoIterator<Item = &'r T::Record<'r>>) -> Result<()>
     where
         T::Record<'r>: 'r,
     {
         for r in records {
-            self.records.push(r);
+            self.records.push(r)?;
         }
-        self.offsets.push(self.records.rows as i32);
+        self.offsets.push(offset(self.records.rows, "list entries")?);
+        Ok(())
     }
 
-    fn finish(self) -> ArrayRef {
-        Arc::new(ListArray::new(
+    fn finish(self) -> Result<ArrayRef> {
+        Ok(Arc::new(ListArray::try_new(
             Arc::new(Field::new("item", DataType::Struct(T::fields()), true)),
             OffsetBuffer::new(self.offsets.into()),
-            Arc::new(self.records.finish()),
+            Arc::new(self.records.finish()?),
             None,
-        ))
+        )?))
     }
 }
 
@@ -503,7 +583,7 @@ pub struct FitColumns {
     terms: RecordLists<TermField>,
     predictors: RecordLists<PredictorField>,
     design: RecordLists<DesignField>,
-    covariance: Vec<Option<f64>>,
+    covariance: NumberCells<Float64Type>,
     covariance_offsets: Vec<i32>,
 }
 
@@ -530,7 +610,7 @@ impl FitColumns {
             terms: RecordLists::new(),
             predictors: RecordLists::new(),
             design: RecordLists::new(),
-            covariance: Vec::new(),
+            covariance: NumberCells::new(),
             covariance_offsets: vec![0],
         }
     }
@@ -546,7 +626,7 @@ impl FitColumns {
         self.predictors.reserve_like_pushed(more);
         self.design.reserve_like_pushed(more);
         self.covariance
-            .reserve(likely_items(self.covariance.len(), groups, more));
+            .reserve(likely_items(self.covariance.values.len(), groups, more));
         self.covariance_offsets.reserve(more);
     }
 
@@ -559,8 +639,8 @@ impl FitColumns {
         predictors: &[PredictorInfo],
         design: &[DesignEntry],
         covariance: Option<&nalgebra::DMatrix<f64>>,
-    ) {
-        self.fits.push(report);
+    ) -> Result<()> {
+        self.fits.push(report)?;
         if let (Some(c), Some(fit)) = (covariance, report.fit) {
             let estimated = |j: usize| fit.states.get(j) == Some(&crate::glm::TermState::Estimated);
             for i in 0..c.nrows() {
@@ -570,25 +650,26 @@ impl FitColumns {
                 }
             }
         }
-        self.covariance_offsets.push(self.covariance.len() as i32);
+        self.covariance_offsets
+            .push(offset(self.covariance.values.len(), "covariance entries")?);
         let terms: Vec<TermRow> = terms.into_iter().map(flag_lost_estimate).collect();
-        self.terms.push_row(&terms);
-        self.predictors.push_row(predictors);
-        self.design.push_row(design);
+        self.terms.push_row(&terms)?;
+        self.predictors.push_row(predictors)?;
+        self.design.push_row(design)
     }
 
-    pub fn finish(self) -> StructArray {
-        let mut arrays = self.fits.arrays();
-        arrays.push(self.terms.finish());
-        arrays.push(self.predictors.finish());
-        arrays.push(self.design.finish());
-        arrays.push(Arc::new(ListArray::new(
+    pub fn finish(self) -> Result<StructArray> {
+        let mut arrays = self.fits.arrays()?;
+        arrays.push(self.terms.finish()?);
+        arrays.push(self.predictors.finish()?);
+        arrays.push(self.design.finish()?);
+        arrays.push(Arc::new(ListArray::try_new(
             Arc::new(Field::new("item", DataType::Float64, true)),
             OffsetBuffer::new(self.covariance_offsets.into()),
-            Arc::new(Float64Array::from(self.covariance)),
+            Arc::new(self.covariance.finish()),
             None,
-        )));
-        StructArray::new(FIT_STRUCT.clone(), arrays, None)
+        )?));
+        Ok(StructArray::try_new(FIT_STRUCT.clone(), arrays, None)?)
     }
 }
 

@@ -30,6 +30,9 @@ pub struct GroupRows {
     exposure: Vec<f64>,
     columns: Vec<Column>,
     batches: Vec<Batch>,
+    /// The heap bytes of `batches`, kept with them: the engine asks for the size after every
+    /// input batch, and summing over all batches each time would be quadratic.
+    batch_bytes: usize,
 }
 
 /// The rows of one input batch, in group order (rows of one group keep their order). A batch
@@ -202,6 +205,7 @@ impl GroupRows {
         };
         let batch = Batch::in_group_order(&inputs, std::mem::take(&mut self.group));
         self.columns = Self::empty_columns(&self.common.spec);
+        self.batch_bytes += batch.bytes();
         self.batches.insert(0, batch);
     }
 
@@ -259,6 +263,7 @@ impl GroupRows {
             }
         }
         let batches = std::mem::take(&mut self.batches);
+        self.batch_bytes = 0;
         let mut y = vec![0.0; total];
         place(
             &mut y,
@@ -381,6 +386,7 @@ impl GroupBuffer for GroupRows {
             exposure: Vec::new(),
             columns,
             batches: Vec::new(),
+            batch_bytes: 0,
         }
     }
 
@@ -406,7 +412,7 @@ impl GroupBuffer for GroupRows {
             + cols
             // Batches count twice: laying them out for the state builds the flat copy while
             // they are still held.
-            + 2 * self.batches.iter().map(Batch::bytes).sum::<usize>()
+            + 2 * self.batch_bytes
     }
 
     /// A clean batch is kept whole, in group order (see [`Batch`]).
@@ -415,7 +421,9 @@ impl GroupBuffer for GroupRows {
             return;
         }
         let group = group_indices.iter().map(|&g| g as u32).collect();
-        self.batches.push(Batch::in_group_order(inputs, group));
+        let batch = Batch::in_group_order(inputs, group);
+        self.batch_bytes += batch.bytes();
+        self.batches.push(batch);
     }
 
     fn push_row(&mut self, inputs: &BatchInputs, row: usize, g: usize) {
