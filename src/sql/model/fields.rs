@@ -13,11 +13,10 @@
 
 use std::sync::{Arc, LazyLock};
 
-use datafusion::arrow::array::NullBufferBuilder;
 use datafusion::arrow::array::{
     Array, ArrayRef, ArrowPrimitiveType, AsArray, BooleanBuilder, ListArray, PrimitiveArray, StringArray, StructArray,
 };
-use datafusion::arrow::buffer::{Buffer, OffsetBuffer, ScalarBuffer};
+use datafusion::arrow::buffer::{BooleanBuffer, Buffer, NullBuffer, OffsetBuffer, ScalarBuffer};
 use datafusion::arrow::datatypes::{DataType, Field, Fields, Float64Type, UInt32Type, UInt64Type};
 use datafusion::error::{DataFusionError, Result};
 
@@ -380,17 +379,17 @@ enum CellColumn {
     Bool(BooleanBuilder),
 }
 
-/// Numbers with a validity bitmap that is only materialised once a NULL arrives.
+/// Numbers and their validity.
 struct NumberCells<T: ArrowPrimitiveType> {
     values: Vec<T::Native>,
-    valid: NullBufferBuilder,
+    valid: Validity,
 }
 
 impl<T: ArrowPrimitiveType> NumberCells<T> {
     fn new() -> Self {
         NumberCells {
             values: Vec::new(),
-            valid: NullBufferBuilder::new(0),
+            valid: Validity::default(),
         }
     }
 
@@ -403,8 +402,36 @@ impl<T: ArrowPrimitiveType> NumberCells<T> {
         self.values.reserve(more);
     }
 
-    fn finish(mut self) -> PrimitiveArray<T> {
+    fn finish(self) -> PrimitiveArray<T> {
         PrimitiveArray::new(ScalarBuffer::from(self.values), self.valid.finish())
+    }
+}
+
+/// Validity bits in Arrow's order (bit i of byte i / 8, least significant first), with the
+/// count of NULLs so that a column without any needs no bitmap. (The engine's own builder
+/// costs a call and a capacity check per bit, which showed at 8% of a fit of many small groups.)
+#[derive(Default)]
+struct Validity {
+    bits: Vec<u8>,
+    len: usize,
+    nulls: usize,
+}
+
+impl Validity {
+    fn append(&mut self, valid: bool) {
+        let bit = self.len % 8;
+        if bit == 0 {
+            self.bits.push(0);
+        }
+        if let Some(last) = self.bits.last_mut() {
+            *last |= u8::from(valid) << bit;
+        }
+        self.nulls += usize::from(!valid);
+        self.len += 1;
+    }
+
+    fn finish(self) -> Option<NullBuffer> {
+        (self.nulls > 0).then(|| NullBuffer::new(BooleanBuffer::new(Buffer::from_vec(self.bits), 0, self.len)))
     }
 }
 
@@ -412,7 +439,7 @@ impl<T: ArrowPrimitiveType> NumberCells<T> {
 struct TextCells {
     bytes: Vec<u8>,
     offsets: Vec<i32>,
-    valid: NullBufferBuilder,
+    valid: Validity,
 }
 
 impl TextCells {
@@ -420,7 +447,7 @@ impl TextCells {
         TextCells {
             bytes: Vec::new(),
             offsets: vec![0],
-            valid: NullBufferBuilder::new(0),
+            valid: Validity::default(),
         }
     }
 
@@ -438,7 +465,7 @@ impl TextCells {
         self.offsets.reserve(more);
     }
 
-    fn finish(mut self) -> Result<StringArray> {
+    fn finish(self) -> Result<StringArray> {
         let offsets = OffsetBuffer::new(ScalarBuffer::from(self.offsets));
         Ok(StringArray::try_new(
             offsets,
@@ -834,4 +861,22 @@ fn text_at<'a>(s: &'a StructArray, field: &str, i: usize) -> Option<&'a str> {
 fn float_at(s: &StructArray, field: &str, i: usize) -> Option<f64> {
     let c = s.column_by_name(field)?.as_primitive_opt::<Float64Type>()?;
     (!c.is_null(i)).then(|| c.value(i))
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// Our bit packing against Arrow's own (`NullBuffer::from(Vec<bool>)`), across byte
+    /// boundaries, and no bitmap at all for a column without NULLs.
+    #[test]
+    fn validity_bits_match_arrow_layout() {
+        let pattern: Vec<bool> = (0..27).map(|i| i % 3 != 1 && i != 16).collect();
+        let mut ours = Validity::default();
+        pattern.iter().for_each(|&v| ours.append(v));
+        assert_eq!(ours.finish(), Some(NullBuffer::from(pattern)));
+        let mut all_valid = Validity::default();
+        (0..9).for_each(|_| all_valid.append(true));
+        assert_eq!(all_valid.finish(), None);
+    }
 }
