@@ -420,7 +420,7 @@ fn covariances<F: Family>(
     let (y, w) = (response.y, &*response.w);
     let n = y.len();
     let k = active.len();
-    let mut ne = NormalEquations::new(k);
+    let mut ne = NormalEquations::new(k, n);
     let mut ww = vec![0.0; n];
     let mut score2 = vec![0.0; n];
     for i in 0..n {

@@ -107,7 +107,7 @@ impl Standardised {
 pub(crate) fn aliased_columns(x: &[f64], n: usize, p: usize, w: &[f64]) -> Vec<bool> {
     let mut aliased = vec![false; p];
     let all: Vec<usize> = (0..p).collect();
-    let mut ne = NormalEquations::new(p);
+    let mut ne = NormalEquations::new(p, n);
     ne.accumulate(x, n, &all, w, None);
     cholesky_in_place(&mut ne.gram, p, ALIAS_TOLERANCE, Some(&mut aliased));
     aliased
@@ -163,7 +163,7 @@ pub(crate) fn irls<F: Family>(
     let mut eta = eta.unwrap_or_else(|| mu.iter().map(|&m| family.link(m)).collect());
     let mut ww = vec![0.0; n];
     let mut z = vec![0.0; n];
-    let mut ne = NormalEquations::new(k);
+    let mut ne = NormalEquations::new(k, n);
     let mut beta = vec![0.0; k];
     let mut deviance = f64::INFINITY;
     let mut trial_eta = vec![0.0; n];

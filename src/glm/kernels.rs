@@ -24,6 +24,12 @@
 /// every other column.
 pub(crate) const BLOCK: usize = 256;
 
+/// Scratch values [`cross_products`] needs for `k` columns of `n` rows: one block per column,
+/// no longer than the rows (a fit of 20 rows zeroes 20 values per column, not 256).
+pub(crate) fn scratch_len(k: usize, n: usize) -> usize {
+    k * BLOCK.min(n)
+}
+
 /// Sums of products split over four lanes (row i of a block in lane i mod 4).
 type Lanes = [f64; 4];
 
@@ -59,7 +65,7 @@ macro_rules! compiled_twice {
 
 /// Upper triangle of X'WX (row-major k x k) and, when `z` is given, X'Wz, added to `gram` and
 /// `rhs`, over the columns of `x` listed in `cols`. `weighted` is scratch of at least
-/// `cols.len() * BLOCK` values.
+/// [`scratch_len`]`(cols.len(), n)` values.
 #[allow(clippy::too_many_arguments)]
 pub(crate) fn cross_products(
     x: &[f64],
@@ -173,20 +179,21 @@ fn cross_products_body<const SIMD: bool>(
     weighted: &mut [f64],
 ) {
     let k = cols.len();
-    assert!(gram.len() >= k * k && rhs.len() >= k && weighted.len() >= k * BLOCK && w.len() >= n);
+    assert!(gram.len() >= k * k && rhs.len() >= k && weighted.len() >= scratch_len(k, n) && w.len() >= n);
+    let stride = BLOCK.min(n);
     assert!(cols.iter().all(|&j| (j + 1) * n <= x.len()) && z.is_none_or(|z| z.len() >= n));
     let mut start = 0;
     while start < n {
         let end = (start + BLOCK).min(n);
         let len = end - start;
         for (a, &j) in cols.iter().enumerate() {
-            let out = &mut weighted[a * BLOCK..a * BLOCK + len];
+            let out = &mut weighted[a * stride..a * stride + len];
             for ((o, &xi), &wi) in out.iter_mut().zip(&x[j * n + start..j * n + end]).zip(&w[start..end]) {
                 *o = xi * wi;
             }
         }
         let weighted = &weighted[..];
-        let wx = |a: usize| &weighted[a * BLOCK..a * BLOCK + len];
+        let wx = |a: usize| &weighted[a * stride..a * stride + len];
         let column = |b: usize| &x[cols[b] * n + start..cols[b] * n + end];
         // Pairs of weighted columns against four columns at a time: 6 loads per 8 products.
         let mut a = 0;
@@ -417,7 +424,7 @@ mod tests {
                 let coef = values(k, 13);
                 let cols: Vec<usize> = (0..k).rev().collect();
                 let run = |dispatch: bool| {
-                    let (mut g, mut r, mut s) = (vec![0.0; k * k], vec![0.0; k], vec![0.0; k * BLOCK]);
+                    let (mut g, mut r, mut s) = (vec![0.0; k * k], vec![0.0; k], vec![0.0; scratch_len(k, n)]);
                     let mut eta = vec![0.0; n];
                     if dispatch {
                         cross_products(&x, n, &cols, &w, Some(&z), &mut g, &mut r, &mut s);

@@ -6,7 +6,7 @@
 //! on buffers reused across IRLS iterations (no allocation per iteration). Matrices here are
 //! small (k x k, k = number of active columns) and stored row-major in flat slices.
 
-use super::kernels::{BLOCK, cross_products};
+use super::kernels::{cross_products, scratch_len};
 
 /// Reusable buffers for one IRLS run.
 pub(crate) struct NormalEquations {
@@ -19,12 +19,13 @@ pub(crate) struct NormalEquations {
 }
 
 impl NormalEquations {
-    pub(crate) fn new(k: usize) -> Self {
+    /// Buffers for `k` columns of `n` rows.
+    pub(crate) fn new(k: usize, n: usize) -> Self {
         NormalEquations {
             k,
             gram: vec![0.0; k * k],
             rhs: vec![0.0; k],
-            weighted: vec![0.0; k * BLOCK],
+            weighted: vec![0.0; scratch_len(k, n)],
         }
     }
 
@@ -141,7 +142,7 @@ mod tests {
         x.extend(xs.iter().map(|v| 2.0 * v));
         x.extend(xs.iter().map(|v| v * v));
         let w = vec![1.0; n];
-        let mut ne = NormalEquations::new(4);
+        let mut ne = NormalEquations::new(4, n);
         ne.accumulate(&x, n, &[0, 1, 2, 3], &w, None);
         let mut flags = [false; 4];
         assert!(cholesky_in_place(
@@ -154,7 +155,7 @@ mod tests {
 
         // y = 1 + 2x + 3x^2 exactly, on the three independent columns.
         let y: Vec<f64> = xs.iter().map(|v| 1.0 + 2.0 * v + 3.0 * v * v).collect();
-        let mut ne = NormalEquations::new(3);
+        let mut ne = NormalEquations::new(3, n);
         ne.accumulate(&x, n, &[0, 1, 3], &w, Some(&y));
         assert!(ne.factor());
         ne.solve();
