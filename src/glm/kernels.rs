@@ -24,10 +24,15 @@
 /// every other column.
 pub(crate) const BLOCK: usize = 256;
 
-/// Scratch values [`cross_products`] needs for `k` columns of `n` rows: one block per column,
-/// no longer than the rows (a fit of 20 rows zeroes 20 values per column, not 256).
+/// Scratch values one column takes in [`cross_products`]: a block, no longer than the rows (a
+/// fit of 20 rows zeroes 20 values per column, not 256).
+fn block_stride(n: usize) -> usize {
+    BLOCK.min(n)
+}
+
+/// Scratch values [`cross_products`] needs for `k` columns of `n` rows.
 pub(crate) fn scratch_len(k: usize, n: usize) -> usize {
-    k * BLOCK.min(n)
+    k * block_stride(n)
 }
 
 /// Sums of products split over four lanes (row i of a block in lane i mod 4).
@@ -180,8 +185,8 @@ fn cross_products_body<const SIMD: bool>(
 ) {
     let k = cols.len();
     assert!(gram.len() >= k * k && rhs.len() >= k && weighted.len() >= scratch_len(k, n) && w.len() >= n);
-    let stride = BLOCK.min(n);
     assert!(cols.iter().all(|&j| (j + 1) * n <= x.len()) && z.is_none_or(|z| z.len() >= n));
+    let stride = block_stride(n);
     let mut start = 0;
     while start < n {
         let end = (start + BLOCK).min(n);
