@@ -510,6 +510,8 @@ fn table_stem(file: &Path) -> String {
 #[tokio::main]
 async fn main() -> datafusion::error::Result<()> {
     let opts = options();
+    // The allocator settings of the `ratesheet` binary when it runs statements and exits.
+    ratesheet::cli::allocator::keep_freed_memory();
     let dir = match &opts.keep {
         Some(d) => {
             std::fs::create_dir_all(d)?;

@@ -271,6 +271,7 @@ async fn main() -> ExitCode {
         };
     }
     if args.paths == ["demo"] && !std::path::Path::new("demo").exists() {
+        ratesheet::cli::allocator::keep_freed_memory();
         return run_demo(&ctx, args.digits as usize, &Hints::new(!args.no_hints)).await;
     }
     let interactive = args.run.is_none() && args.script.is_none();
@@ -300,6 +301,9 @@ async fn main() -> ExitCode {
         max_rows: if interactive { 40 } else { usize::MAX },
         width: ratesheet::cli::output::terminal_width(),
     };
+    if !interactive {
+        ratesheet::cli::allocator::keep_freed_memory();
+    }
     let text = match (&args.run, &args.script) {
         (Some(sql), _) => sql.clone(),
         (None, Some(path)) => match std::fs::read_to_string(path) {

@@ -3,6 +3,7 @@
 //! This layer only wires things together: it opens files as DataFusion tables, runs SQL, and
 //! renders Arrow batches. Everything statistical lives in `glm` and `sql`.
 
+pub mod allocator;
 pub mod guard;
 pub mod hints;
 pub mod output;
